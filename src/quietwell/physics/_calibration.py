@@ -32,8 +32,12 @@ __all__ = [
 
 
 def thermal_calibration(
-    area_v2: float, area_v2_stderr: float, mass: float, mass_stderr: float,
-    omega0: float, temperature: float,
+    area_v2: float,
+    area_v2_stderr: float,
+    mass: float,
+    mass_stderr: float,
+    omega0: float,
+    temperature: float,
 ) -> Estimate:
     """Calibration factor ``c`` in V/m from the area of a thermalized peak.
 
@@ -49,7 +53,9 @@ def thermal_calibration(
     return Estimate(c, c * rel)
 
 
-def calibration_from_psd_numerator(d: float, mass: float, gamma: float, temperature: float) -> float:
+def calibration_from_psd_numerator(
+    d: float, mass: float, gamma: float, temperature: float
+) -> float:
     """Calibration factor in V/m from the numerator ``D`` of a fitted voltage PSD.
 
     ``S_VV = D/((Omega0**2 - Omega**2)**2 + gamma**2 Omega**2) + B`` gives
@@ -64,14 +70,21 @@ def calibration_from_psd_numerator(d: float, mass: float, gamma: float, temperat
 
 
 def drive_response(omega0: ArrayLike, gamma: ArrayLike, omega_d: ArrayLike) -> np.ndarray:
-    """``|Omega0**2 - Omega_d**2 + i gamma Omega_d|`` in rad**2/s**2 (inverse mechanical susceptibility times m)."""
+    """``|Omega0**2 - Omega_d**2 + i gamma Omega_d|`` in rad**2/s**2.
+
+    The modulus of the inverse mechanical susceptibility times the mass.
+    """
     w0 = np.asarray(omega0, dtype=float)
     wd = np.asarray(omega_d, dtype=float)
     return np.sqrt((w0**2 - wd**2) ** 2 + np.asarray(gamma) ** 2 * wd**2)
 
 
 def drive_amplitude(
-    charge: ArrayLike, field: ArrayLike, mass: ArrayLike, omega0: ArrayLike, gamma: ArrayLike,
+    charge: ArrayLike,
+    field: ArrayLike,
+    mass: ArrayLike,
+    omega0: ArrayLike,
+    gamma: ArrayLike,
     omega_d: ArrayLike,
 ) -> np.ndarray:
     """Amplitude ``x0`` in m of the steady response to a Coulomb force ``q E0 cos(Omega_d t)``.
@@ -79,15 +92,23 @@ def drive_amplitude(
     ``x0 = (q E0/m)/sqrt((Omega0**2 - Omega_d**2)**2 + gamma**2 Omega_d**2)``; in a
     one-sided PSD the line has area ``x0**2/2``. ``charge`` in C, ``field`` in V/m.
     """
-    return np.asarray(charge) * np.asarray(field) / (
-        np.asarray(mass) * drive_response(omega0, gamma, omega_d)
+    return (
+        np.asarray(charge)
+        * np.asarray(field)
+        / (np.asarray(mass) * drive_response(omega0, gamma, omega_d))
     )
 
 
 def mass_from_drive(
-    drive_area: float, drive_area_stderr: float,
-    thermal_area: float, thermal_area_stderr: float,
-    charge: float, field: float, omega0: float, gamma: float, omega_d: float,
+    drive_area: float,
+    drive_area_stderr: float,
+    thermal_area: float,
+    thermal_area_stderr: float,
+    charge: float,
+    field: float,
+    omega0: float,
+    gamma: float,
+    omega_d: float,
     temperature: float,
 ) -> Estimate:
     """Mass in kg from a Coulomb-driven line referenced to the thermal peak.
@@ -125,7 +146,11 @@ def sideband_occupation(ratio: float, ratio_stderr: float) -> Estimate:
 
 
 def radius_from_slope(
-    slope: float, slope_stderr: float, density: float, temperature: float, gas: Gas = N2,
+    slope: float,
+    slope_stderr: float,
+    density: float,
+    temperature: float,
+    gas: Gas = N2,
     delta: float = DIFFUSE,
 ) -> Estimate:
     """Radius in m from the free-molecular damping slope ``s`` (1/(s Pa)).
@@ -142,7 +167,11 @@ def radius_from_slope(
 
 
 def mass_from_slope(
-    slope: float, slope_stderr: float, density: float, temperature: float, gas: Gas = N2,
+    slope: float,
+    slope_stderr: float,
+    density: float,
+    temperature: float,
+    gas: Gas = N2,
     delta: float = DIFFUSE,
 ) -> Estimate:
     """Mass in kg ``(4 pi/3) rho R**3`` with ``R`` from :func:`radius_from_slope`."""

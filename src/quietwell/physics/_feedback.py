@@ -98,7 +98,9 @@ def parametric_beta(eta: ArrayLike, mass: ArrayLike, omega0: ArrayLike) -> np.nd
     return np.asarray(eta) / (2.0 * np.asarray(mass) * np.asarray(omega0))
 
 
-def parametric_mean_energy(beta: ArrayLike, gamma: ArrayLike, temperature: ArrayLike) -> np.ndarray:
+def parametric_mean_energy(
+    beta: ArrayLike, gamma: ArrayLike, temperature: ArrayLike
+) -> np.ndarray:
     """Mean energy in J under parametric feedback, from the stationary distribution.
 
     ``rho(E) ~ exp(-E/k_B T - beta E**2/(2 gamma k_B T))``. With ``eps = E/k_B T``
@@ -115,9 +117,7 @@ def parametric_mean_energy(beta: ArrayLike, gamma: ArrayLike, temperature: Array
     return eps * kt
 
 
-def reheating_curve(
-    t: ArrayLike, n0: float, heating_rate: float, gamma: float
-) -> np.ndarray:
+def reheating_curve(t: ArrayLike, n0: float, heating_rate: float, gamma: float) -> np.ndarray:
     """Mean occupation ``n(t)`` after feedback is switched off at ``t = 0``.
 
     ``n + 1/2 = (n0 + 1/2) e^{-gamma t} + (Gamma/gamma)(1 - e^{-gamma t})``, with

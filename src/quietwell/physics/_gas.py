@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ._conventions import AMU, K_B, thermal_occupation
+from ._conventions import K_B, N_A, thermal_occupation
 
 __all__ = [
     "Gas",
@@ -67,7 +67,7 @@ class Gas:
     @property
     def molecule_mass(self) -> float:
         """Mass of one molecule in kg."""
-        return self.molar_mass / 1e-3 * AMU
+        return self.molar_mass / N_A
 
 
 # Sutherland data: N2 from the CRC Handbook (PHYSICS.md section 2, published).
@@ -105,8 +105,10 @@ def mean_free_path(pressure: ArrayLike, temperature: ArrayLike, gas: Gas = N2) -
     ``pressure`` in Pa, ``temperature`` in K.
     """
     t = np.asarray(temperature, dtype=float)
-    return viscosity(t, gas) / np.asarray(pressure) * np.sqrt(
-        np.pi * K_B * t / (2.0 * gas.molecule_mass)
+    return (
+        viscosity(t, gas)
+        / np.asarray(pressure)
+        * np.sqrt(np.pi * K_B * t / (2.0 * gas.molecule_mass))
     )
 
 
@@ -132,7 +134,9 @@ def epstein_damping(
     Phys. Rev. 23, 710 (1924).
     """
     v = mean_speed(temperature, gas)
-    return 8.0 * delta * np.asarray(pressure) / (np.pi * np.asarray(density) * np.asarray(radius) * v)
+    return (
+        8.0 * delta * np.asarray(pressure) / (np.pi * np.asarray(density) * np.asarray(radius) * v)
+    )
 
 
 def gas_damping(
@@ -163,7 +167,10 @@ def gas_damping(
 
 
 def damping_slope(
-    radius: ArrayLike, density: ArrayLike, temperature: ArrayLike, gas: Gas = N2,
+    radius: ArrayLike,
+    density: ArrayLike,
+    temperature: ArrayLike,
+    gas: Gas = N2,
     delta: float = DIFFUSE,
 ) -> np.ndarray:
     """Free-molecular slope ``d gamma/dP = 8 delta/(pi rho R v_mean)`` in 1/(s Pa)."""
@@ -171,7 +178,10 @@ def damping_slope(
 
 
 def radius_from_damping_slope(
-    slope: ArrayLike, density: ArrayLike, temperature: ArrayLike, gas: Gas = N2,
+    slope: ArrayLike,
+    density: ArrayLike,
+    temperature: ArrayLike,
+    gas: Gas = N2,
     delta: float = DIFFUSE,
 ) -> np.ndarray:
     """Radius in m from the damping slope ``s`` (1/(s Pa)): ``R = 8 delta/(pi rho v_mean s)``."""
@@ -185,4 +195,3 @@ def gas_heating_rate(gamma: ArrayLike, omega0: ArrayLike, temperature: ArrayLike
     ``gamma`` in 1/s, ``omega0`` in rad/s, ``temperature`` in K.
     """
     return np.asarray(gamma) * (thermal_occupation(omega0, temperature) + 0.5)
-

@@ -55,7 +55,9 @@ def polarizability(radius: ArrayLike, index: ArrayLike) -> np.ndarray:
     return 4.0 * np.pi * EPS0 * np.asarray(radius) ** 3 * (eps - 1.0) / (eps + 2.0)
 
 
-def scattering_cross_section(radius: ArrayLike, index: ArrayLike, wavelength: ArrayLike) -> np.ndarray:
+def scattering_cross_section(
+    radius: ArrayLike, index: ArrayLike, wavelength: ArrayLike
+) -> np.ndarray:
     """Rayleigh scattering cross-section ``k**4 |alpha|**2/(6 pi eps0**2)`` in m**2."""
     k = 2.0 * np.pi / np.asarray(wavelength)
     a = polarizability(radius, index)
