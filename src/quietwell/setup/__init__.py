@@ -1,0 +1,20 @@
+"""Setup descriptions (``profiles/<name>/setup.toml``): what the apparatus is and its limits."""
+
+from ._schema import (
+    DetectorSpec,
+    ElectrodeSpec,
+    GaugeSpec,
+    LimitSpec,
+    ParticleSpec,
+    Setup,
+    TrapSpec,
+    VacuumSpec,
+    load_setup,
+    setup_from_dict,
+)
+from ._units import UNITS, parse_quantity
+
+__all__ = [
+    "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "LimitSpec", "ParticleSpec", "Setup",
+    "TrapSpec", "UNITS", "VacuumSpec", "load_setup", "parse_quantity", "setup_from_dict",
+]

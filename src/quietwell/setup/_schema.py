@@ -1,0 +1,382 @@
+"""The setup description: one TOML file per setup, ``profiles/<name>/setup.toml``.
+
+A setup says what the apparatus is (trap, detector, electrodes, vacuum) and the
+limits that the device classes enforce before anything moves. Values may carry
+units (``"0.3 W"``, ``"1e-8 mbar"``); the loader converts them to SI and refuses
+unknown keys, missing keys, wrong units and out-of-range values with one line
+naming the file, the key, the value, what is allowed and what to do.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import tomllib
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .._errors import InputError
+from ._units import parse_quantity
+
+__all__ = [
+    "ParticleSpec",
+    "TrapSpec",
+    "DetectorSpec",
+    "ElectrodeSpec",
+    "GaugeSpec",
+    "VacuumSpec",
+    "LimitSpec",
+    "Setup",
+    "load_setup",
+    "setup_from_dict",
+]
+
+GAUGE_KINDS = ("thermal_conductivity", "ionization")
+
+
+@dataclass(frozen=True)
+class ParticleSpec:
+    """Nominal particle (for a sim setup: the simulation's truth).
+
+    radius in m, density in kg/m**3, charge in elementary charges.
+    """
+
+    radius: float
+    density: float
+    charge_e: int
+
+
+@dataclass(frozen=True)
+class TrapSpec:
+    """Optical trap: wavelength (m), waist (m), power (W), mode frequencies x, y, z (Hz),
+    the pressure below which an undamped particle is lost (Pa) and the trap depth (K)."""
+
+    wavelength: float
+    waist: float
+    power: float
+    frequencies: tuple[float, float, float]
+    loss_pressure: float
+    trap_depth: float
+
+
+@dataclass(frozen=True)
+class DetectorSpec:
+    """Motion detector: sample rate (Hz), record length (samples), calibration x, y, z
+    (V/m, nominal), imprecision (m/sqrt(Hz)), crosstalk (3x3, dimensionless), ADC range
+    (+-V) and bits, heterodyne carrier (Hz) and local-oscillator offset sign (+1/-1)."""
+
+    sample_rate: float
+    record_length: int
+    calibration: tuple[float, float, float]
+    imprecision: float
+    crosstalk: tuple[tuple[float, float, float], ...]
+    adc_range: float
+    adc_bits: int
+    heterodyne_carrier: float
+    lo_sign: int
+
+
+@dataclass(frozen=True)
+class ElectrodeSpec:
+    """Feedback electrodes: gap (m), geometry factor kappa (field = kappa V/d), loop delay (s)."""
+
+    distance: float
+    geometry_factor: float
+    loop_delay: float
+
+
+@dataclass(frozen=True)
+class GaugeSpec:
+    """One vacuum gauge: name, kind, range (Pa) and stated accuracy (fraction of reading)."""
+
+    name: str
+    kind: str
+    range_min: float
+    range_max: float
+    accuracy: float
+
+
+@dataclass(frozen=True)
+class VacuumSpec:
+    """Chamber: gas species, base pressure (Pa), start pressure (Pa), gauges."""
+
+    gas: str
+    base_pressure: float
+    start_pressure: float
+    gauges: tuple[GaugeSpec, ...]
+
+
+@dataclass(frozen=True)
+class LimitSpec:
+    """Limits enforced in code before any device moves (SI units)."""
+
+    laser_power_max: float
+    electrode_voltage_max: float
+    feedback_gain_max: float
+    parametric_gain_max: float
+    pressure_min: float
+    pressure_max: float
+    sample_rate_max: float
+    record_length_max: int
+
+
+@dataclass(frozen=True)
+class Setup:
+    """A parsed setup description (SI units throughout)."""
+
+    name: str
+    lab: str
+    kind: str
+    description: str
+    temperature: float
+    particle: ParticleSpec
+    trap: TrapSpec
+    detector: DetectorSpec
+    electrodes: ElectrodeSpec
+    vacuum: VacuumSpec
+    limits: LimitSpec
+    seed: int | None = None
+    source: str = field(default="<dict>", compare=False)
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain-JSON form (SI values), as stored in every run's start document."""
+        d = asdict(self)
+        d.pop("source")
+        return json.loads(json.dumps(d))
+
+    @property
+    def sha256(self) -> str:
+        """SHA-256 of the canonical JSON of :meth:`as_dict` (identifies the setup exactly)."""
+        text = json.dumps(self.as_dict(), sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(text.encode()).hexdigest()
+
+
+# --- parsing ---------------------------------------------------------------
+
+_KNOWN_KEYS: dict[str, tuple[str, ...]] = {
+    "setup": ("name", "lab", "kind", "description", "temperature", "seed"),
+    "particle": ("radius", "density", "charge_e"),
+    "trap": ("wavelength", "waist", "power", "frequencies", "loss_pressure", "trap_depth"),
+    "detector": ("sample_rate", "record_length", "calibration", "imprecision", "crosstalk",
+                 "adc_range", "adc_bits", "heterodyne_carrier", "lo_sign"),
+    "electrodes": ("distance", "geometry_factor", "loop_delay"),
+    "vacuum": ("gas", "base_pressure", "start_pressure", "gauges"),
+    "vacuum.gauges": ("name", "kind", "range_min", "range_max", "accuracy"),
+    "limits": ("laser_power_max", "electrode_voltage_max", "feedback_gain_max",
+               "parametric_gain_max", "pressure_min", "pressure_max", "sample_rate_max",
+               "record_length_max"),
+}
+
+
+class _Section:
+    """Reads one TOML table, remembering which keys were used, for clear errors."""
+
+    def __init__(self, data: dict[str, Any], name: str, source: str) -> None:
+        if not isinstance(data, dict):
+            raise InputError(f"{source}: [{name}] must be a table; fix the file")
+        self.data, self.name, self.source = data, name, source
+        self.used: set[str] = set()
+        known = _KNOWN_KEYS[name.split("[")[0]]
+        for key in data:
+            if key not in known:
+                raise InputError(f"{self.where(key)} is not a known key; allowed keys are "
+                                 f"{', '.join(known)}; fix the spelling or remove it")
+
+    def where(self, key: str) -> str:
+        return f"{self.source}: [{self.name}] {key}"
+
+    def raw(self, key: str, default: Any = ...) -> Any:
+        self.used.add(key)
+        if key not in self.data:
+            if default is ...:
+                raise InputError(f"{self.where(key)} is missing; add it to the file")
+            return default
+        return self.data[key]
+
+    def quantity(self, key: str, kind: str, *, lo: float = 0.0, hi: float = math.inf,
+                 default: Any = ..., lo_open: bool = True) -> float:
+        v = self.raw(key, default)
+        x = parse_quantity(v, kind, self.where(key))
+        bad = (x <= lo if lo_open else x < lo) or x > hi or not math.isfinite(x)
+        if bad:
+            op = ">" if lo_open else ">="
+            raise InputError(f"{self.where(key)} = {v!r} is out of range; allowed {op} {lo:g}"
+                             f" and <= {hi:g} (SI units); fix the file")
+        return x
+
+    def integer(self, key: str, *, lo: int, hi: int, default: Any = ...) -> int:
+        v = self.raw(key, default)
+        if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
+            raise InputError(f"{self.where(key)} = {v!r}: expected an integer from {lo} to {hi};"
+                             " fix the file")
+        return v
+
+    def text(self, key: str, default: Any = ..., choices: tuple[str, ...] | None = None) -> str:
+        v = self.raw(key, default)
+        if not isinstance(v, str) or (choices is not None and v not in choices):
+            allowed = f"one of {', '.join(choices)}" if choices else "a string"
+            raise InputError(f"{self.where(key)} = {v!r}: expected {allowed}; fix the file")
+        return v
+
+    def triple(self, key: str, kind: str) -> tuple[float, float, float]:
+        v = self.raw(key)
+        if not isinstance(v, list) or len(v) != 3:
+            raise InputError(f"{self.where(key)} = {v!r}: expected a list of 3 values [x, y, z];"
+                             " fix the file")
+        out = tuple(parse_quantity(item, kind, f"{self.where(key)}[{i}]") for i, item in
+                    enumerate(v))
+        if any(not (x > 0 and math.isfinite(x)) for x in out):
+            raise InputError(f"{self.where(key)} = {v!r}: every value must be > 0; fix the file")
+        return out  # type: ignore[return-value]
+
+    def finish(self) -> None:
+        # every key of the table above must have been read by the parser
+        unread = set(self.data) - self.used
+        assert not unread, f"parser did not read {sorted(unread)} of [{self.name}]"
+
+
+def setup_from_dict(data: dict[str, Any], source: str = "<dict>") -> Setup:
+    """Build a :class:`Setup` from the parsed TOML ``data``; ``source`` names it in errors."""
+    known = ("setup", "particle", "trap", "detector", "electrodes", "vacuum", "limits")
+    for name in data:
+        if name not in known:
+            raise InputError(f"{source}: [{name}] is not a known section; allowed sections are "
+                             f"{', '.join(known)}; fix the spelling or remove it")
+    sections = {}
+    for name in known:
+        if name not in data:
+            raise InputError(f"{source}: section [{name}] is missing; add it to the file")
+        sections[name] = _Section(data[name], name, source)
+    s, p, t, d = sections["setup"], sections["particle"], sections["trap"], sections["detector"]
+    e, v, lim = sections["electrodes"], sections["vacuum"], sections["limits"]
+
+    limits = LimitSpec(
+        laser_power_max=lim.quantity("laser_power_max", "power"),
+        electrode_voltage_max=lim.quantity("electrode_voltage_max", "voltage"),
+        feedback_gain_max=lim.quantity("feedback_gain_max", "rate"),
+        parametric_gain_max=lim.quantity("parametric_gain_max", "inverse_area", lo=0.0,
+                                         lo_open=False),
+        pressure_min=lim.quantity("pressure_min", "pressure"),
+        pressure_max=lim.quantity("pressure_max", "pressure"),
+        sample_rate_max=lim.quantity("sample_rate_max", "frequency"),
+        record_length_max=lim.integer("record_length_max", lo=2**10, hi=2**26),
+    )
+    if limits.pressure_min >= limits.pressure_max:
+        raise InputError(f"{lim.where('pressure_min')} must be below pressure_max; fix the file")
+
+    particle = ParticleSpec(
+        radius=p.quantity("radius", "length", hi=10e-6),
+        density=p.quantity("density", "density", hi=25e3),
+        charge_e=p.integer("charge_e", lo=-10_000, hi=10_000),
+    )
+    trap = TrapSpec(
+        wavelength=t.quantity("wavelength", "length", lo=100e-9, hi=20e-6),
+        waist=t.quantity("waist", "length", lo=100e-9, hi=1e-3),
+        power=t.quantity("power", "power", hi=limits.laser_power_max),
+        frequencies=t.triple("frequencies", "frequency"),
+        loss_pressure=t.quantity("loss_pressure", "pressure"),
+        trap_depth=t.quantity("trap_depth", "temperature"),
+    )
+    crosstalk = d.raw("crosstalk", [[1, 0, 0], [0, 1, 0], [0, 0, 1]])
+    if (not isinstance(crosstalk, list) or len(crosstalk) != 3
+            or any(not isinstance(r, list) or len(r) != 3 for r in crosstalk)
+            or any(isinstance(c, bool) or not isinstance(c, int | float) for r in crosstalk
+                   for c in r)):
+        raise InputError(f"{d.where('crosstalk')} = {crosstalk!r}: expected a 3x3 list of "
+                         "numbers (rows: channels x, y, z; columns: motion x, y, z); fix the file")
+    lo_sign = d.integer("lo_sign", lo=-1, hi=1, default=1)
+    if lo_sign == 0:
+        raise InputError(f"{d.where('lo_sign')} = 0: expected +1 or -1; fix the file")
+    detector = DetectorSpec(
+        sample_rate=d.quantity("sample_rate", "frequency", hi=limits.sample_rate_max),
+        record_length=d.integer("record_length", lo=2**10, hi=limits.record_length_max),
+        calibration=d.triple("calibration", "calibration"),
+        imprecision=d.quantity("imprecision", "amplitude_density"),
+        crosstalk=tuple(tuple(float(c) for c in r) for r in crosstalk),
+        adc_range=d.quantity("adc_range", "voltage"),
+        adc_bits=d.integer("adc_bits", lo=8, hi=24),
+        heterodyne_carrier=d.quantity("heterodyne_carrier", "frequency", default="0 Hz",
+                                      lo=0.0, lo_open=False),
+        lo_sign=lo_sign,
+    )
+    electrodes = ElectrodeSpec(
+        distance=e.quantity("distance", "length"),
+        geometry_factor=e.quantity("geometry_factor", "dimensionless", hi=10.0),
+        loop_delay=e.quantity("loop_delay", "time", lo=0.0, lo_open=False, hi=1e-3),
+    )
+    gauges_raw = v.raw("gauges")
+    if not isinstance(gauges_raw, list) or not gauges_raw:
+        raise InputError(f"{v.where('gauges')}: expected at least one [[vacuum.gauges]] table;"
+                         " fix the file")
+    gauges = []
+    for i, g in enumerate(gauges_raw):
+        gs = _Section(g, f"vacuum.gauges[{i}]", source)
+        gauge = GaugeSpec(
+            name=gs.text("name"),
+            kind=gs.text("kind", choices=GAUGE_KINDS),
+            range_min=gs.quantity("range_min", "pressure"),
+            range_max=gs.quantity("range_max", "pressure"),
+            accuracy=gs.quantity("accuracy", "dimensionless", hi=1.0),
+        )
+        if gauge.range_min >= gauge.range_max:
+            raise InputError(f"{gs.where('range_min')} must be below range_max; fix the file")
+        gs.finish()
+        gauges.append(gauge)
+    from ..physics import GASES
+
+    vacuum = VacuumSpec(
+        gas=v.text("gas", choices=tuple(GASES)),
+        base_pressure=v.quantity("base_pressure", "pressure"),
+        start_pressure=v.quantity("start_pressure", "pressure", hi=limits.pressure_max),
+        gauges=tuple(gauges),
+    )
+    seed = s.raw("seed", None)
+    if seed is not None and (isinstance(seed, bool) or not isinstance(seed, int) or seed < 0):
+        raise InputError(f"{s.where('seed')} = {seed!r}: expected a non-negative integer; "
+                         "fix the file")
+    setup = Setup(
+        name=s.text("name"),
+        lab=s.text("lab", default=""),
+        kind=s.text("kind", choices=("sim", "hardware")),
+        description=s.text("description", default=""),
+        temperature=s.quantity("temperature", "temperature", default="295 K", hi=1000.0),
+        particle=particle,
+        trap=trap,
+        detector=detector,
+        electrodes=electrodes,
+        vacuum=vacuum,
+        limits=limits,
+        seed=seed,
+        source=source,
+    )
+    for sec in sections.values():
+        sec.finish()
+    return setup
+
+
+def load_setup(path: str | Path) -> Setup:
+    """Load ``path`` (a ``setup.toml`` or a profile folder holding one).
+
+    Raises
+    ------
+    InputError
+        Missing or unreadable file, TOML syntax error, or any bad key or value.
+    """
+    p = Path(path)
+    if p.is_dir():
+        p = p / "setup.toml"
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError(f"{p}: no such setup file; give a profile folder holding setup.toml "
+                         "(see profiles/)") from None
+    except OSError as exc:
+        raise InputError(f"{p}: cannot read the setup file ({exc.strerror}); check the path "
+                         "and its permissions") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{p}: not valid TOML ({exc}); fix the file") from None
+    return setup_from_dict(data, str(p))
