@@ -15,8 +15,20 @@ from ._errors import (
 
 __version__ = "0.1.0"
 
+
+def open_catalog(dir_or_uri):
+    """The tiled client of a quietwell store (a data directory or a tiled URI).
+
+    See :func:`quietwell.store.open_catalog`.
+    """
+    from .store import open_catalog as _open
+
+    return _open(dir_or_uri)
+
+
 __all__ = [
     "__version__",
+    "open_catalog",
     "FitError",
     "InputError",
     "LimitError",
