@@ -57,7 +57,8 @@ def thermal_psd(
     Examples
     --------
     >>> import numpy as np
-    >>> s = thermal_psd(1e5, 1.15192e-18, 2*np.pi*1e5, 2*np.pi*1e3, 295.0)
+    >>> m = sphere_mass(50e-9, 2200.0)
+    >>> s = thermal_psd(1e5, m, 2*np.pi*1e5, 2*np.pi*1e3, 295.0)
     >>> f"{float(s):.5e}"
     '5.70170e-18'
     """

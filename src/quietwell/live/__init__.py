@@ -1,0 +1,7 @@
+"""Live analysis: fit each record as it arrives and store the results in the same run."""
+
+from ._feed import TraceFeed
+from ._fitter import LiveFitter
+from ._record_fit import FIT_QUANTITIES, RecordAnalyzer
+
+__all__ = ["FIT_QUANTITIES", "LiveFitter", "RecordAnalyzer", "TraceFeed"]
