@@ -115,7 +115,7 @@ class LimitSpec:
     laser_power_max: float
     electrode_voltage_max: float
     feedback_gain_max: float
-    parametric_gain_max: float
+    modulation_depth_max: float
     pressure_min: float
     pressure_max: float
     sample_rate_max: float
@@ -165,7 +165,7 @@ _KNOWN_KEYS: dict[str, tuple[str, ...]] = {
     "vacuum": ("gas", "base_pressure", "start_pressure", "gauges"),
     "vacuum.gauges": ("name", "kind", "range_min", "range_max", "accuracy"),
     "limits": ("laser_power_max", "electrode_voltage_max", "feedback_gain_max",
-               "parametric_gain_max", "pressure_min", "pressure_max", "sample_rate_max",
+               "modulation_depth_max", "pressure_min", "pressure_max", "sample_rate_max",
                "record_length_max"),
 }
 
@@ -256,8 +256,8 @@ def setup_from_dict(data: dict[str, Any], source: str = "<dict>") -> Setup:
         laser_power_max=lim.quantity("laser_power_max", "power"),
         electrode_voltage_max=lim.quantity("electrode_voltage_max", "voltage"),
         feedback_gain_max=lim.quantity("feedback_gain_max", "rate"),
-        parametric_gain_max=lim.quantity("parametric_gain_max", "inverse_area", lo=0.0,
-                                         lo_open=False),
+        modulation_depth_max=lim.quantity("modulation_depth_max", "dimensionless", lo=0.0,
+                                          hi=0.99, lo_open=False),
         pressure_min=lim.quantity("pressure_min", "pressure"),
         pressure_max=lim.quantity("pressure_max", "pressure"),
         sample_rate_max=lim.quantity("sample_rate_max", "frequency"),

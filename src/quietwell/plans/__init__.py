@@ -1,0 +1,1 @@
+"""Measurement plans of a levitated-particle characterisation."""
