@@ -2,6 +2,22 @@
 
 from ._feed import TraceFeed
 from ._fitter import LiveFitter
-from ._record_fit import FIT_QUANTITIES, RecordAnalyzer
+from ._record_fit import (
+    FIT_QUANTITIES,
+    CombinedAnalyzer,
+    DriveAnalyzer,
+    ModeAnalyzer,
+    RecordAnalyzer,
+    SidebandAnalyzer,
+)
 
-__all__ = ["FIT_QUANTITIES", "LiveFitter", "RecordAnalyzer", "TraceFeed"]
+__all__ = [
+    "FIT_QUANTITIES",
+    "CombinedAnalyzer",
+    "DriveAnalyzer",
+    "LiveFitter",
+    "ModeAnalyzer",
+    "RecordAnalyzer",
+    "SidebandAnalyzer",
+    "TraceFeed",
+]

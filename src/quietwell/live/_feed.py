@@ -3,7 +3,7 @@
 Raw traces travel as external HDF5 assets (``stream_resource`` + ``stream_datum``),
 never inline. :class:`TraceFeed` resolves them: when a ``primary`` event arrives it
 reads the slices its stream datums named (SWMR, as the writer is still appending) and
-calls ``consumer(seq_num, channels, sample_rate)``. It works the same for any
+calls ``consumer(seq_num, traces, data)``. It works the same for any
 detector that emits the standard documents, and for replays of stored runs.
 """
 
@@ -19,7 +19,7 @@ from event_model import DocumentRouter
 
 __all__ = ["TraceFeed"]
 
-Consumer = Callable[[int, dict[str, np.ndarray], float], None]
+Consumer = Callable[[int, dict[str, np.ndarray], dict], None]
 
 
 def _path_of(uri: str) -> Path:
@@ -33,16 +33,18 @@ class TraceFeed(DocumentRouter):
     Parameters
     ----------
     consumer : callable
-        ``consumer(seq_num, channels, sample_rate)`` with ``channels`` mapping
-        ``"x"``, ``"y"``, ``"z"`` (and ``"intensity"`` when present) to float arrays in V.
-    prefix : str
-        Data-key prefix of the traces (``"trace_"``).
+        ``consumer(seq_num, traces, data)``: ``traces`` maps each external data key
+        (``"trace_x"``, ..., ``"het_trace_beat"``) to its array in V, ``data`` is the
+        event's scalar data (``sample_rate`` in Hz, ...).
+    marker : str
+        Only data keys containing ``marker`` are read (``"trace_"``).
     """
 
-    def __init__(self, consumer: Consumer, prefix: str = "trace_",
-                 stream_name: str = "primary") -> None:
+    def __init__(
+        self, consumer: Consumer, marker: str = "trace_", stream_name: str = "primary"
+    ) -> None:
         super().__init__()
-        self.consumer, self.prefix, self.stream_name = consumer, prefix, stream_name
+        self.consumer, self.marker, self.stream_name = consumer, marker, stream_name
         self._reset()
 
     def _reset(self) -> None:
@@ -62,7 +64,7 @@ class TraceFeed(DocumentRouter):
         return doc
 
     def stream_resource(self, doc):
-        if str(doc.get("data_key", "")).startswith(self.prefix):
+        if self.marker in str(doc.get("data_key", "")):
             self._resources[doc["uid"]] = doc
         return doc
 
@@ -76,13 +78,11 @@ class TraceFeed(DocumentRouter):
     def event(self, doc):
         if doc["descriptor"] not in self._descriptors or not self._pending:
             return doc
-        channels = {}
-        for key, (res, start, stop) in self._pending.items():
-            arr = self._read(res, start, stop)
-            channels[key[len(self.prefix):]] = arr
+        traces = {
+            key: self._read(res, start, stop) for key, (res, start, stop) in self._pending.items()
+        }
         self._pending = {}
-        fs = float(doc["data"].get("sample_rate", doc["data"].get("detector_sample_rate", 0.0)))
-        self.consumer(int(doc["seq_num"]), channels, fs)
+        self.consumer(int(doc["seq_num"]), traces, dict(doc["data"]))
         return doc
 
     def stop(self, doc):

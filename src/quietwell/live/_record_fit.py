@@ -1,4 +1,5 @@
-"""Fit one detector record: per axis f0, gamma, area, background and occupation.
+"""Fit one record: per axis f0, gamma, area, background, occupation, energy envelope;
+heterodyne sidebands and their ratio.
 
 The same code path serves the live fitter, the summaries and re-analysis of a stored
 run. A fit that fails is reported in the fields (``nan`` values and a status message),
@@ -10,15 +11,23 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import Protocol
 
 import numpy as np
 
-from .._errors import QuietwellError
+from .._errors import InputError, QuietwellError
 from ..analysis import fit_psd, welch_psd
-from ..analysis._derived import occupation_from_area
-from ..physics import AXES
+from ..analysis._derived import energy_envelope, occupation_from_area
+from ..physics import AXES, sideband_occupation
 
-__all__ = ["RecordAnalyzer", "FIT_QUANTITIES"]
+__all__ = [
+    "RecordAnalyzer",
+    "ModeAnalyzer",
+    "SidebandAnalyzer",
+    "CombinedAnalyzer",
+    "DriveAnalyzer",
+    "FIT_QUANTITIES",
+]
 
 #: per-axis quantity -> units of its data key (the ``_stderr`` twin has the same units)
 FIT_QUANTITIES: dict[str, str] = {
@@ -29,22 +38,52 @@ FIT_QUANTITIES: dict[str, str] = {
     "occupation": "quanta",
 }
 
+_FAILURES = (QuietwellError, ValueError, np.linalg.LinAlgError, FloatingPointError)
+
+
+class RecordAnalyzer(Protocol):
+    """What the live fitter needs: data keys with units, and fields of one record."""
+
+    def describe(self) -> dict[str, dict]: ...
+
+    def analyze(self, traces: Mapping[str, np.ndarray], data: Mapping) -> dict: ...
+
+
+def _key(name: str, dtype: str, units: str, shape: list[int] | None = None) -> dict:
+    return {"dtype": dtype, "shape": shape or [], "units": units, "source": "quietwell.live"}
+
+
+def _number_keys(names: Sequence[str], units: str) -> dict[str, dict]:
+    out = {}
+    for n in names:
+        out[n] = _key(n, "number", units)
+        out[f"{n}_stderr"] = _key(n, "number", units)
+    return out
+
+
+def _status(exc: Exception) -> str:
+    return f"{type(exc).__name__}: {exc}"[:400]
+
 
 @dataclass
-class RecordAnalyzer:
-    """Fits the x, y, z channels of one record around the modes of the setup.
+class ModeAnalyzer:
+    """Fits the x, y, z channels of a record around the modes of the setup.
 
     Parameters
     ----------
     mode_frequencies : sequence of 3 floats
-        Expected x, y, z frequencies in Hz (setup); each channel is fitted in a band
-        of ``band_fraction`` around its own mode, with every mode inside the band
+        Expected x, y, z frequencies in Hz; each channel is fitted in a band of
+        ``band_fraction`` around its own mode, with every mode inside the band
         (crosstalk peaks) fitted too.
-    calibration : sequence of 3 floats or None
-        V/m per axis, with ``calibration_stderr``; with ``mass`` (kg) it gives the
-        occupation of each mode.
     nperseg : int
         Welch segment length (50 % overlap, Hann window).
+    calibration, calibration_stderr : sequence of 3 floats or None
+        V/m per axis; with ``mass`` (kg) they give each mode's occupation.
+    envelope_window : int or None
+        If set, also the energy envelope ``envelope_x`` (quanta, one value per window
+        of this many samples) of a record of ``record_length`` samples.
+    prefix : str
+        Data-key prefix of the traces (``"trace_"`` gives ``trace_x``...).
     """
 
     mode_frequencies: Sequence[float]
@@ -53,31 +92,58 @@ class RecordAnalyzer:
     calibration_stderr: Sequence[float] | None = None
     mass: float | None = None
     band_fraction: float = 0.12
+    envelope_window: int | None = None
+    record_length: int | None = None
+    prefix: str = "trace_"
 
-    def describe(self, prefix: str = "") -> dict[str, dict]:
-        """Data keys of :meth:`analyze`'s fields, each with ``units``."""
+    def __post_init__(self) -> None:
+        if self.envelope_window is not None:
+            if self.record_length is None or self.calibration is None or self.mass is None:
+                raise InputError("an energy envelope needs record_length, calibration and mass")
+            if self.envelope_window > self.record_length:
+                raise InputError(
+                    f"envelope_window={self.envelope_window} must be <= "
+                    f"record_length={self.record_length}"
+                )
+
+    @property
+    def n_windows(self) -> int:
+        return 0 if self.envelope_window is None else self.record_length // self.envelope_window
+
+    def describe(self) -> dict[str, dict]:
         out: dict[str, dict] = {}
         for axis in AXES:
             for q, units in FIT_QUANTITIES.items():
-                for suffix in ("", "_stderr"):
-                    out[f"{prefix}{q}_{axis}{suffix}"] = {
-                        "dtype": "number", "shape": [], "units": units,
-                        "source": "quietwell.live"}
-            out[f"{prefix}fit_status_{axis}"] = {"dtype": "string", "shape": [], "units": "",
-                                                 "source": "quietwell.live"}
+                out.update(_number_keys([f"{q}_{axis}"], units))
+            out[f"fit_status_{axis}"] = _key("", "string", "")
+            if self.envelope_window is not None:
+                out[f"envelope_{axis}"] = _key("", "array", "quanta", [self.n_windows])
+        if self.envelope_window is not None:
+            out["envelope_time"] = _key("", "array", "s", [self.n_windows])
         return out
 
-    def analyze(self, channels: Mapping[str, np.ndarray], sample_rate: float) -> dict:
-        """Fields of one record: ``{f0_x: .., f0_x_stderr: .., ..., fit_status_x: 'ok'}``."""
-        out: dict[str, float | str] = {}
+    def analyze(self, traces: Mapping[str, np.ndarray], data: Mapping) -> dict:
+        fs = float(data.get("sample_rate", math.nan))
+        out: dict = {}
         for i, axis in enumerate(AXES):
-            fields = {f"{q}_{axis}{s}": math.nan for q in FIT_QUANTITIES for s in ("", "_stderr")}
+            fields: dict = {
+                f"{q}_{axis}{s}": math.nan for q in FIT_QUANTITIES for s in ("", "_stderr")
+            }
+            trace = traces.get(f"{self.prefix}{axis}")
             try:
-                fields.update(self._fit_axis(i, axis, np.asarray(channels[axis]), sample_rate))
+                if trace is None:
+                    raise InputError(f"the record has no {self.prefix}{axis} trace")
+                fields.update(self._fit_axis(i, axis, np.asarray(trace), fs))
                 fields[f"fit_status_{axis}"] = "ok"
-            except (QuietwellError, ValueError, np.linalg.LinAlgError) as exc:
-                fields[f"fit_status_{axis}"] = f"{type(exc).__name__}: {exc}"[:400]
+            except _FAILURES as exc:
+                fields[f"fit_status_{axis}"] = _status(exc)
+            if self.envelope_window is not None:
+                fields[f"envelope_{axis}"] = self._envelope(i, axis, trace, fs, fields)
             out.update(fields)
+        if self.envelope_window is not None:
+            out["envelope_time"] = (
+                (np.arange(self.n_windows) + 0.5) * self.envelope_window / fs
+            ).tolist()
         return out
 
     def _fit_axis(self, i: int, axis: str, trace: np.ndarray, fs: float) -> dict[str, float]:
@@ -88,16 +154,167 @@ class RecordAnalyzer:
         fit = fit_psd(psd, peaks=guesses, band=(lo, hi))
         peak = min(fit.peaks, key=lambda p: abs(p.f0 - f_own))
         res = {
-            f"f0_{axis}": peak.f0, f"f0_{axis}_stderr": peak.f0_stderr,
-            f"gamma_{axis}": peak.gamma, f"gamma_{axis}_stderr": peak.gamma_stderr,
-            f"area_{axis}": peak.area, f"area_{axis}_stderr": peak.area_stderr,
+            f"f0_{axis}": peak.f0,
+            f"f0_{axis}_stderr": peak.f0_stderr,
+            f"gamma_{axis}": peak.gamma,
+            f"gamma_{axis}_stderr": peak.gamma_stderr,
+            f"area_{axis}": peak.area,
+            f"area_{axis}_stderr": peak.area_stderr,
             f"background_{axis}": peak.background,
             f"background_{axis}_stderr": peak.background_stderr,
         }
         if self.calibration is not None and self.mass is not None:
             c_err = 0.0 if self.calibration_stderr is None else self.calibration_stderr[i]
-            n = occupation_from_area(peak.area, peak.area_stderr, self.calibration[i], c_err,
-                                     self.mass, peak.f0)
+            n = occupation_from_area(
+                peak.area, peak.area_stderr, self.calibration[i], c_err, self.mass, peak.f0
+            )
             res[f"occupation_{axis}"] = n.value
             res[f"occupation_{axis}_stderr"] = n.stderr
         return res
+
+    def _envelope(self, i: int, axis: str, trace, fs: float, fields: dict) -> list[float]:
+        if trace is None or not math.isfinite(fs):
+            return [math.nan] * self.n_windows
+        trace = np.asarray(trace)
+        floor = fields.get(f"background_{axis}", math.nan)
+        if not math.isfinite(floor):
+            # no fit (a reheating record is not stationary): floor from the band edges
+            psd = welch_psd(trace, fs, nperseg=self.nperseg, noverlap=self.nperseg // 2)
+            f = psd.frequency
+            f0 = float(self.mode_frequencies[i])
+            edge = (np.abs(f - f0) > 0.08 * f0) & (np.abs(f - f0) < 0.12 * f0)
+            others = np.all([np.abs(f - fm) > 0.04 * fm for fm in self.mode_frequencies], axis=0)
+            sel = edge & others
+            floor = (
+                float(np.median(psd.psd[sel]) / (1 - 1 / (9 * psd.effective_averages)) ** 3)
+                if np.any(sel)
+                else 0.0
+            )
+        env = energy_envelope(
+            trace,
+            fs,
+            float(self.mode_frequencies[i]),
+            float(self.calibration[i]),
+            float(self.mass),
+            window_samples=int(self.envelope_window),
+            floor_v2_per_hz=floor,
+        )
+        return env.occupation.tolist()
+
+
+@dataclass
+class SidebandAnalyzer:
+    """Occupation of one mode from the heterodyne sidebands of a beat record.
+
+    The Stokes sideband (weight n + 1) lies at ``carrier - lo_sign * f_mode``... see
+    :class:`quietwell.devices.HeterodyneDetector` for the sign convention; the ratio
+    ``R = A_antiStokes/A_Stokes`` gives ``n = R/(1 - R)``.
+    """
+
+    carrier: float
+    lo_sign: int
+    mode_frequency: float
+    nperseg: int
+    axis: str = "z"
+    trace_key: str = "het_trace_beat"
+    rate_key: str = "het_sample_rate"
+
+    def stokes_side(self) -> int:
+        """+1 if the Stokes sideband is above the carrier, -1 if below."""
+        return 1 if self.lo_sign > 0 else -1
+
+    def describe(self) -> dict[str, dict]:
+        a = self.axis
+        out = _number_keys([f"stokes_area_{a}", f"antistokes_area_{a}"], "V**2")
+        out.update(_number_keys([f"sideband_ratio_{a}"], "1"))
+        out.update(_number_keys([f"sideband_occupation_{a}"], "quanta"))
+        out[f"sideband_status_{a}"] = _key("", "string", "")
+        return out
+
+    def analyze(self, traces: Mapping[str, np.ndarray], data: Mapping) -> dict:
+        a = self.axis
+        out: dict = {k: math.nan for k in self.describe() if "status" not in k}
+        try:
+            trace = traces.get(self.trace_key)
+            if trace is None:
+                raise InputError(f"the record has no {self.trace_key} trace")
+            fs = float(data.get(self.rate_key, data.get("sample_rate", math.nan)))
+            psd = welch_psd(
+                np.asarray(trace), fs, nperseg=self.nperseg, noverlap=self.nperseg // 2
+            )
+            areas = {}
+            for side in (+1, -1):
+                fc = self.carrier + side * self.mode_frequency
+                band = (fc - 0.1 * self.mode_frequency, fc + 0.1 * self.mode_frequency)
+                pk = fit_psd(psd, peaks=[fc], band=band).peaks[0]
+                areas[side] = (pk.area, pk.area_stderr)
+            s = self.stokes_side()
+            (a_s, e_s), (a_as, e_as) = areas[s], areas[-s]
+            ratio = a_as / a_s
+            r_err = ratio * math.hypot(e_as / a_as, e_s / a_s)
+            n = sideband_occupation(ratio, r_err)
+            out.update(
+                {
+                    f"stokes_area_{a}": a_s,
+                    f"stokes_area_{a}_stderr": e_s,
+                    f"antistokes_area_{a}": a_as,
+                    f"antistokes_area_{a}_stderr": e_as,
+                    f"sideband_ratio_{a}": ratio,
+                    f"sideband_ratio_{a}_stderr": r_err,
+                    f"sideband_occupation_{a}": n.value,
+                    f"sideband_occupation_{a}_stderr": n.stderr,
+                    f"sideband_status_{a}": "ok",
+                }
+            )
+        except _FAILURES as exc:
+            out[f"sideband_status_{a}"] = _status(exc)
+        return out
+
+
+@dataclass
+class CombinedAnalyzer:
+    """Several analyzers on the same record; their fields are merged."""
+
+    parts: Sequence[RecordAnalyzer]
+
+    def describe(self) -> dict[str, dict]:
+        out: dict[str, dict] = {}
+        for p in self.parts:
+            out.update(p.describe())
+        return out
+
+    def analyze(self, traces: Mapping[str, np.ndarray], data: Mapping) -> dict:
+        out: dict = {}
+        for p in self.parts:
+            out.update(p.analyze(traces, data))
+        return out
+
+
+@dataclass
+class DriveAnalyzer:
+    """Complex amplitude (V) of a Coulomb drive tone in one channel.
+
+    Fields ``drive_re_<axis>`` and ``drive_im_<axis>``: the phasor relative to a cosine
+    starting at the record's first sample (see
+    :func:`quietwell.analysis._derived.drive_phasor`). The plan projects the phasors of
+    all records on a common phase to get signed amplitudes.
+    """
+
+    drive_frequency: float
+    axis: str = "x"
+    prefix: str = "trace_"
+
+    def describe(self) -> dict[str, dict]:
+        a = self.axis
+        return {f"drive_re_{a}": _key("", "number", "V"), f"drive_im_{a}": _key("", "number", "V")}
+
+    def analyze(self, traces: Mapping[str, np.ndarray], data: Mapping) -> dict:
+        from ..analysis._derived import drive_phasor
+
+        a = self.axis
+        trace = traces.get(f"{self.prefix}{a}")
+        fs = float(data.get("sample_rate", math.nan))
+        if trace is None or not math.isfinite(fs):
+            return {f"drive_re_{a}": math.nan, f"drive_im_{a}": math.nan}
+        z = drive_phasor(trace, fs, self.drive_frequency)
+        return {f"drive_re_{a}": z.real, f"drive_im_{a}": z.imag}

@@ -1,0 +1,238 @@
+"""Detector calibration from thermal motion, and charge and mass from a Coulomb drive.
+
+* Thermal calibration: ``c = sqrt(A m Omega0**2/(k_B T))`` from the area ``A`` (V**2)
+  of a thermalized peak, Rev. Sci. Instrum. 89, 033111 (2018).
+* Charge calibration: a drive tone off resonance while the charge is changed in steps;
+  the signed response falls in equal steps per elementary charge, which gives the
+  integer charge; referenced to the thermal area of the same records it gives the mass
+  without assuming a density (PHYSICS.md section 6).
+"""
+
+from __future__ import annotations
+
+import cmath
+import math
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from .._errors import InputError, LimitError
+from ..analysis._derived import fit_integer_charge
+from ..live import CombinedAnalyzer, DriveAnalyzer, LiveFitter, ModeAnalyzer
+from ..physics import AXES, E_CHARGE, Estimate, mass_from_drive, thermal_calibration
+from ._common import (
+    Apparatus,
+    Recorder,
+    check_pressures,
+    emit_summary,
+    run_metadata,
+    set_feedback,
+    wait_lab,
+    weighted_mean,
+)
+from ._derived_device import DerivedValues
+from ._pressure_sweep import set_setpoint
+from ._runner import as_estimate, configure_detector, nominal_mass, run_with_fitter
+
+__all__ = ["thermal_calibration_plan", "charge_calibration"]
+
+
+def _thermal_pressure(app: Apparatus, pressure: float, plan: str) -> float:
+    (p,) = check_pressures(app, [pressure], "pressure")
+    if p < app.setup.trap.loss_pressure:
+        raise LimitError(f"{plan} needs feedback off, so pressure={p:g} Pa must be at or "
+                         f"above the setup's loss pressure {app.setup.trap.loss_pressure:g} Pa;"
+                         " choose a higher pressure")
+    return p
+
+
+def _mean_area(fits: Sequence[dict], axis: str) -> tuple[float, float, float, float]:
+    ok = [f for f in fits if f.get(f"fit_status_{axis}") == "ok"]
+    if not ok:
+        return (math.nan,) * 4
+    area, area_err = weighted_mean([f[f"area_{axis}"] for f in ok],
+                                   [f[f"area_{axis}_stderr"] for f in ok])
+    f0 = float(np.mean([f[f"f0_{axis}"] for f in ok]))
+    gamma = float(np.mean([f[f"gamma_{axis}"] for f in ok]))
+    return area, area_err, f0, gamma
+
+
+def thermal_calibration_plan(
+    detectors: Sequence[Any],
+    pressure: float,
+    *,
+    apparatus: Apparatus,
+    records: int = 4,
+    mass: Estimate | float | None = None,
+    settle_time: float = 1.0,
+    sample_rate: float | None = None,
+    record_length: int | None = None,
+    md: dict | None = None,
+):
+    """Calibrate the detector (V/m per axis) on thermal motion at ``pressure`` (Pa).
+
+    Feedback is switched off, so ``pressure`` must be at or above the loss pressure.
+    ``mass`` (kg) comes from a pressure sweep or a charge calibration; without it the
+    setup's nominal radius and density are used, and the summary says which
+    (``mass_source``). Run name: ``thermal_calibration``.
+    """
+    app = apparatus
+    p = _thermal_pressure(app, pressure, "thermal_calibration")
+    if not isinstance(records, int) or records < 1:
+        raise InputError(f"records={records!r} must be an integer >= 1")
+    m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
+    source = "setup" if mass is None else "measured"
+    motion = detectors[0]
+    fs, n = yield from configure_detector(app, motion, sample_rate, record_length)
+    fitter = LiveFitter(ModeAnalyzer(app.setup.trap.frequencies, nperseg=max(1024, n // 8)))
+    md_ = run_metadata(app, "thermal_calibration",
+                       {"pressure": p, "records": records, "mass": m.value,
+                        "mass_source": source}, md)
+    values = DerivedValues("summary")
+    temperature = app.setup.temperature
+
+    def body():
+        rec = Recorder(app, detectors, fitter)
+        yield from set_feedback(app, None)
+        yield from set_setpoint(app, p)
+        yield from wait_lab(app, settle_time)
+        for _ in range(records):
+            yield from rec.record()
+        yield from rec.flush()
+        for axis in AXES:
+            area, err, f0, _ = _mean_area(rec.fits, axis)
+            if math.isfinite(area):
+                c = thermal_calibration(area, err, m.value, m.stderr, 2 * math.pi * f0,
+                                        temperature)
+            else:
+                c = Estimate(math.nan, math.nan)
+            values.put(f"calibration_{axis}", c, "V/m")
+        values.put("mass", m, "kg")
+        values.put("mass_source", source, "")
+        values.put("pressure", float(np.nanmean([r["pressure"] for r in rec.primaries])), "Pa")
+        yield from emit_summary(values)
+        return values.values
+
+    return (yield from run_with_fitter(detectors, fitter, md_, body))
+
+
+def charge_calibration(
+    detectors: Sequence[Any],
+    charge_steps: Sequence[int],
+    *,
+    apparatus: Apparatus,
+    pressure: float,
+    drive_frequency: float,
+    drive_amplitude: float,
+    records_per_step: int = 3,
+    settle_time: float = 0.5,
+    sample_rate: float | None = None,
+    record_length: int | None = None,
+    md: dict | None = None,
+):
+    """Count the charge and weigh the particle with a Coulomb drive along x.
+
+    Parameters
+    ----------
+    charge_steps : sequence of int
+        Charge change (elementary charges) applied before each step; the first is
+        usually 0. E.g. ``[0, -1, -1, -1]`` removes one charge per step.
+    pressure : float
+        Pa, at or above the loss pressure (feedback off, motion thermal).
+    drive_frequency : float
+        Hz, off resonance and away from every mode.
+    drive_amplitude : float
+        V on the electrodes (checked against the setup's voltage limit).
+
+    Summary: ``charge`` (elementary charges, integer, at the first step), ``mass`` (kg,
+    from the drive referenced to the thermal area, no density assumed), the response
+    per charge and the field per volt used. Run name: ``charge_calibration``.
+    """
+    app = apparatus
+    setup = app.setup
+    p = _thermal_pressure(app, pressure, "charge_calibration")
+    steps = [int(s) for s in charge_steps]
+    if len(steps) < 3 or any(s != c for s, c in zip(steps, charge_steps, strict=True)):
+        raise InputError(f"charge_steps={list(charge_steps)!r} must be at least 3 integers")
+    if not setup.limits.electrode_voltage_max >= drive_amplitude > 0:
+        raise LimitError(f"drive_amplitude={drive_amplitude:g} V is outside (0, "
+                         f"{setup.limits.electrode_voltage_max:g}] V (setup limit); lower it")
+    f_modes = setup.trap.frequencies
+    if any(abs(drive_frequency - f) < 0.05 * f for f in f_modes):
+        raise InputError(f"drive_frequency={drive_frequency:g} Hz is within 5 % of a mode "
+                         f"({', '.join(f'{f:g}' for f in f_modes)} Hz); drive off resonance")
+    motion = detectors[0]
+    fs, n = yield from configure_detector(app, motion, sample_rate, record_length)
+    analyzer = CombinedAnalyzer([ModeAnalyzer(f_modes, nperseg=max(1024, n // 8)),
+                                 DriveAnalyzer(drive_frequency, axis="x")])
+    fitter = LiveFitter(analyzer)
+    md_ = run_metadata(app, "charge_calibration",
+                       {"charge_steps": steps, "pressure": p, "drive_frequency": drive_frequency,
+                        "drive_amplitude": drive_amplitude, "records_per_step": records_per_step},
+                       md)
+    values = DerivedValues("summary")
+    field = setup.electrodes.geometry_factor * drive_amplitude / setup.electrodes.distance
+
+    def body():
+        import bluesky.plan_stubs as bps
+
+        rec = Recorder(app, detectors, fitter)
+        yield from set_feedback(app, None)
+        yield from set_setpoint(app, p)
+        el = app.electrodes
+        yield from bps.mv(el.drive_frequency, float(drive_frequency),
+                          el.drive_amplitude, float(drive_amplitude))
+        yield from bps.mv(el.drive_enabled, True)
+        cumulative, per_step = 0, []
+        try:
+            for s in steps:
+                if s:
+                    yield from bps.mv(app.charge.steps, s)
+                cumulative += s
+                yield from wait_lab(app, settle_time)
+                for _ in range(records_per_step):
+                    yield from rec.record()
+                yield from rec.flush()
+                per_step.append((cumulative, rec.fits[-records_per_step:]))
+        finally:
+            yield from bps.mv(el.drive_enabled, False)
+        values.update(_summarize_charge(per_step, rec.fits, field, drive_frequency,
+                                        setup.temperature))
+        yield from emit_summary(values)
+        return values.values
+
+    return (yield from run_with_fitter(detectors, fitter, md_, body))
+
+
+def _summarize_charge(per_step, all_fits, field, f_drive, temperature) -> dict:
+    phasors = [[complex(f["drive_re_x"], f["drive_im_x"]) for f in fits] for _, fits in per_step]
+    ref = max((z for zs in phasors for z in zs), key=abs)
+    phase = cmath.phase(ref)
+    amps, errs, ks = [], [], []
+    for (k, _), zs in zip(per_step, phasors, strict=True):
+        proj = np.array([(z * cmath.exp(-1j * phase)).real for z in zs])
+        amps.append(float(proj.mean()))
+        errs.append(float(proj.std(ddof=1) / math.sqrt(proj.size)) if proj.size > 1 else math.nan)
+        ks.append(k)
+    errs = np.asarray(errs)
+    floor = np.nanmedian(errs) if np.any(np.isfinite(errs)) else 1.0
+    errs = np.where(np.isfinite(errs) & (errs > 0), errs, floor)
+    # the reference phase is that of the largest response; if the charge crosses zero the
+    # projection changes sign, which the integer fit handles
+    fit = fit_integer_charge(amps, errs, ks)
+    charge = fit.charge
+    alpha = fit.per_charge
+    area, area_err, f0, gamma = _mean_area(all_fits, "x")
+    sign = 1 if charge >= 0 else -1
+    drive_area = alpha.value**2 / 2.0
+    m = mass_from_drive(drive_area, abs(alpha.value) * alpha.stderr, area, area_err,
+                        E_CHARGE, field, 2 * math.pi * f0, gamma, 2 * math.pi * f_drive,
+                        temperature)
+    return {
+        "charge": (int(charge), "e"),
+        "charge_residual": (fit.residual, "e"),
+        "mass": (m, "kg"),
+        "response_per_charge": (Estimate(sign * alpha.value, alpha.stderr), "V"),
+        "drive_field": (field, "V/m"),
+    }

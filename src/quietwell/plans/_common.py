@@ -1,0 +1,252 @@
+"""What every quietwell plan shares: the apparatus, run metadata, the record stub
+(primary event + pipelined fit), the gauge choice, feedback stubs and the summary.
+
+Plans open runs; the stubs here never do.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import bluesky.plan_stubs as bps
+import numpy as np
+from bluesky.utils import short_uid
+
+from .. import __version__
+from .._errors import InputError, LimitError
+from ..live import LiveFitter
+from ..physics import AXES
+from ..setup import Setup
+from ._derived_device import DerivedValues
+
+__all__ = ["Apparatus", "Recorder", "run_metadata", "set_feedback", "wait_lab",
+           "emit_summary", "check_pressures", "check_gain"]
+
+
+@dataclass
+class Apparatus:
+    """The devices of one setup, as built from its profile.
+
+    Attributes
+    ----------
+    setup : Setup
+        The parsed setup description (limits, nominal values).
+    detector : quietwell.devices.MotionDetector
+    electrodes : quietwell.devices.FeedbackElectrodes
+    charge : quietwell.devices.ChargeControl
+    laser : quietwell.devices.TrapLaser
+    gauges : sequence of quietwell.devices.VacuumGauge
+        Named as in the setup's ``[[vacuum.gauges]]``.
+    pressure : quietwell.devices.PressureController
+    clock : quietwell.devices.LabClock
+    heterodyne : quietwell.devices.HeterodyneDetector or None
+    sim_truth : callable or None
+        For a simulated setup: returns the simulation's static truth (radius_m, ...).
+    sim_pressure : callable or None
+        For a simulated setup: the true chamber pressure in Pa now.
+    """
+
+    setup: Setup
+    detector: Any
+    electrodes: Any
+    charge: Any
+    laser: Any
+    gauges: Sequence[Any]
+    pressure: Any
+    clock: Any
+    heterodyne: Any = None
+    sim_truth: Callable[[], dict] | None = None
+    sim_pressure: Callable[[], float] | None = None
+    extras: dict[str, Any] = field(default_factory=dict)
+
+    def devices(self) -> list[Any]:
+        """Every device, for connecting them."""
+        out = [self.detector, self.electrodes, self.charge, self.laser, self.pressure,
+               self.clock, *self.gauges]
+        return out + ([self.heterodyne] if self.heterodyne is not None else [])
+
+
+def run_metadata(app: Apparatus, plan_name: str, plan_args: dict, md: dict | None,
+                 dimensions: list | None = None) -> dict:
+    """Start-document metadata shared by every plan (setup, hash, version, sim truth)."""
+    out = {
+        "plan_name": plan_name,
+        "plan_args": plan_args,
+        "setup": app.setup.name,
+        "setup_description": app.setup.as_dict(),
+        "setup_sha256": app.setup.sha256,
+        "quietwell_version": __version__,
+        "hints": {"dimensions": dimensions or [(["time"], "primary")]},
+    }
+    if app.sim_truth is not None:
+        out["sim_truth"] = app.sim_truth()
+    out.update(md or {})
+    return out
+
+
+def check_pressures(app: Apparatus, pressures: Sequence[float], what: str = "pressures"
+                    ) -> list[float]:
+    """Every pressure (Pa) finite and inside the setup's limits, refused before any move."""
+    lim = app.setup.limits
+    out = []
+    for i, p in enumerate(pressures):
+        if isinstance(p, bool) or not isinstance(p, int | float) or not math.isfinite(p):
+            raise InputError(f"{what}[{i}]={p!r} is not a pressure; give numbers in Pa")
+        if not lim.pressure_min <= p <= lim.pressure_max:
+            raise LimitError(f"{what}[{i}]={p:g} Pa is outside the setup {app.setup.name!r} "
+                             f"limits [{lim.pressure_min:g}, {lim.pressure_max:g}] Pa; "
+                             "choose pressures inside them")
+        out.append(float(p))
+    if not out:
+        raise InputError(f"{what} is empty; give at least one pressure in Pa")
+    return out
+
+
+def check_gain(app: Apparatus, gain: float, what: str = "gain") -> float:
+    """A cold-damping gain (1/s) in (0, feedback_gain_max] of the setup."""
+    hi = app.setup.limits.feedback_gain_max
+    if isinstance(gain, bool) or not isinstance(gain, int | float) or not math.isfinite(gain):
+        raise InputError(f"{what}={gain!r} is not a gain; give a damping rate in 1/s")
+    if not 0 < gain <= hi:
+        raise LimitError(f"{what}={gain:g} 1/s is outside (0, {hi:g}] 1/s, the setup "
+                         f"{app.setup.name!r} limit; choose a gain inside it")
+    return float(gain)
+
+
+def set_feedback(app: Apparatus, gain: float | None, axes: Sequence[str] = AXES):
+    """Plan stub: cold damping on with ``gain`` (1/s) on ``axes``, or off if ``gain`` is None."""
+    args: list = []
+    for a in axes:
+        ax = app.electrodes.axis(a)
+        if gain is None:
+            args += [ax.enabled, False]
+        else:
+            args += [ax.gain, float(gain), ax.enabled, True]
+    yield from bps.mv(*args)
+
+
+def wait_lab(app: Apparatus, seconds: float):
+    """Plan stub: let ``seconds`` of setup time pass (simulated or real)."""
+    if seconds > 0:
+        yield from bps.mv(app.clock, float(seconds))
+
+
+class _PressurePick(DerivedValues):
+    """The gauge reading used for an event: ``pressure`` (Pa), ``pressure_gauge``, and for
+    a sim ``sim_pressure`` (Pa, the true chamber pressure)."""
+
+    def __init__(self, sim: bool) -> None:
+        super().__init__(name="pressure_pick")
+        self.sim = sim
+        self.set(math.nan, "none", math.nan)
+
+    def set(self, p: float, gauge: str, true_p: float) -> None:
+        self.clear()
+        self.put("pressure", p, "Pa")
+        self.put("pressure_gauge", gauge, "")
+        if self.sim:
+            self.put("sim_pressure", true_p, "Pa")
+
+
+def _plain(value):
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+class Recorder:
+    """Acquire records into ``primary`` and their fits into ``fits``, one behind.
+
+    ``record()`` triggers the detectors, reads them and the gauges into one
+    ``primary`` event (with the chosen ``pressure``), then reads the fit of the
+    previous record, so that each fit runs while the next record is acquired.
+    ``flush()`` reads every outstanding fit. ``fits`` collects plain dicts of every fit
+    read and ``primaries`` the plain primary readings, in order.
+    """
+
+    def __init__(self, app: Apparatus, detectors: Sequence[Any], fitter: LiveFitter) -> None:
+        self.app, self.detectors, self.fitter = app, list(detectors), fitter
+        self.pick = _PressurePick(sim=app.sim_pressure is not None)
+        self.fits: list[dict] = []
+        self.primaries: list[dict] = []
+        self._outstanding = 0
+        self._accuracy = {g.name: g.accuracy for g in app.setup.vacuum.gauges}
+
+    def _choose(self, readings: dict) -> tuple[float, str]:
+        best = (math.nan, "none", math.inf)
+        for g in self.app.gauges:
+            p = readings.get(f"{g.name}-pressure")
+            st = readings.get(f"{g.name}-status")
+            if p is None or st is None or str(st) != "ok" or not math.isfinite(p):
+                continue
+            acc = self._accuracy.get(g.name, 1.0)
+            if acc < best[2]:
+                best = (float(p), g.name, acc)
+        return best[0], best[1]
+
+    def record(self):
+        yield from bps.checkpoint()
+        group = short_uid("record")
+        for det in self.detectors:
+            if hasattr(det, "trigger"):
+                yield from bps.trigger(det, group=group)
+        yield from bps.wait(group=group)
+        yield from bps.create("primary")
+        readings: dict = {}
+        for det in self.detectors:
+            r = yield from bps.read(det)
+            readings.update({k: _plain(v["value"]) for k, v in (r or {}).items()})
+        for g in self.app.gauges:
+            if g not in self.detectors:
+                r = yield from bps.read(g)
+                readings.update({k: _plain(v["value"]) for k, v in (r or {}).items()})
+        p, name = self._choose(readings)
+        true_p = self.app.sim_pressure() if self.app.sim_pressure is not None else math.nan
+        self.pick.set(p, name, true_p)
+        yield from bps.read(self.pick)
+        readings.update(self.pick.values)
+        yield from bps.save()
+        self.primaries.append(readings)
+        self._outstanding += 1
+        while self._outstanding > 1:
+            yield from self._read_fit()
+
+    def _read_fit(self):
+        r = yield from bps.trigger_and_read([self.fitter], name="fits")
+        self._outstanding -= 1
+        self.fits.append({k: _plain(v["value"]) for k, v in r.items()})
+
+    def flush(self):
+        while self._outstanding > 0:
+            yield from self._read_fit()
+
+    def pairs(self) -> list[tuple[dict, dict]]:
+        """(primary, fit) of every record whose fit has been read."""
+        return list(zip(self.primaries, self.fits, strict=False))
+
+
+def emit_summary(values: DerivedValues):
+    """Plan stub: one event in the ``summary`` stream with the derived results."""
+    yield from bps.trigger_and_read([values], name="summary")
+
+
+def weighted_mean(values: Sequence[float], errors: Sequence[float]) -> tuple[float, float]:
+    """Weighted mean and its error, the error inflated by sqrt(reduced chi2) when > 1."""
+    v = np.asarray(values, dtype=float)
+    e = np.asarray(errors, dtype=float)
+    ok = np.isfinite(v) & np.isfinite(e) & (e > 0)
+    v, e = v[ok], e[ok]
+    if v.size == 0:
+        return math.nan, math.nan
+    w = 1 / e**2
+    m = float(np.sum(w * v) / np.sum(w))
+    err = float(1 / math.sqrt(np.sum(w)))
+    if v.size > 1:
+        chi2 = float(np.sum(w * (v - m) ** 2) / (v.size - 1))
+        err *= math.sqrt(max(1.0, chi2))
+    return m, err

@@ -1,0 +1,210 @@
+"""Gain sweep: step the cold-damping gain at low pressure and find the best cooling.
+
+Per step the fitted damping and the calibrated occupation of each axis; summary: the
+cold-damping model of PHYSICS.md section 4 (Nature 524, 325 (2015)) fitted per axis,
+its optimal gain and minimum occupation with errors, beside the model's prediction
+from the setup's nominal values.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from .._errors import InputError
+from ..analysis._derived import fit_cold_damping
+from ..live import LiveFitter, ModeAnalyzer
+from ..physics import (
+    AXES,
+    GASES,
+    Estimate,
+    cold_damping_occupation,
+    cold_damping_optimum,
+    epstein_damping,
+    gas_heating_rate,
+    measurement_rate,
+    recoil_heating_rate,
+    scattered_power,
+    silica_index,
+    sphere_mass,
+)
+from ._common import (
+    Apparatus,
+    Recorder,
+    check_gain,
+    emit_summary,
+    run_metadata,
+    set_feedback,
+    wait_lab,
+    weighted_mean,
+)
+from ._derived_device import DerivedValues
+from ._runner import (
+    as_estimate,
+    configure_detector,
+    nominal_calibration,
+    nominal_mass,
+    run_with_fitter,
+)
+
+__all__ = ["gain_sweep", "predicted_cold_damping"]
+
+
+def predicted_cold_damping(app: Apparatus, pressure: float) -> dict[str, tuple[float, float]]:
+    """Per axis ``(Gamma_dec, Gamma_meas)`` from the setup's nominal values at ``pressure``.
+
+    ``Gamma_dec = gamma_gas (n_th + 1/2) + Gamma_recoil`` (quanta/s) and
+    ``Gamma_meas = x_zpf**2/(2 S_imp)`` (1/s) with ``S_imp`` the setup's imprecision
+    squared (m**2/Hz).
+    """
+    s = app.setup
+    p, t = s.particle, s.trap
+    m = float(sphere_mass(p.radius, p.density))
+    gamma = float(epstein_damping(p.radius, p.density, pressure, s.temperature,
+                                  GASES[s.vacuum.gas]))
+    p_scat = float(scattered_power(p.radius, silica_index(t.wavelength), t.wavelength, t.power,
+                                   t.waist))
+    out = {}
+    for axis, f in zip(AXES, t.frequencies, strict=True):
+        w = 2 * math.pi * f
+        dec = float(gas_heating_rate(gamma, w, s.temperature)) + float(
+            recoil_heating_rate(p_scat, t.wavelength, m, w, axis))
+        meas = float(measurement_rate(m, w, s.detector.imprecision**2))
+        out[axis] = (dec, meas)
+    return out
+
+
+def gain_sweep(
+    detectors: Sequence[Any],
+    gains: Sequence[float],
+    *,
+    apparatus: Apparatus,
+    records_per_step: int = 2,
+    settle_periods: float = 30.0,
+    calibration: Sequence[Estimate | float] | None = None,
+    mass: Estimate | float | None = None,
+    stop_after_rises: int = 3,
+    sample_rate: float | None = None,
+    record_length: int | None = None,
+    md: dict | None = None,
+):
+    """Step the cold-damping gain (1/s, all axes) through ``gains`` at the present pressure.
+
+    Each step waits ``settle_periods / gain`` of setup time, then records. The sweep stops
+    early when the total occupation rose ``stop_after_rises`` steps in a row (past the
+    optimum). Occupations need a calibration (V/m per axis, e.g. the summary of a
+    thermal calibration) and the mass; without them the setup's nominal values are
+    used and the summary says so (``calibration_source``). Run name: ``gain_sweep``.
+    """
+    app = apparatus
+    gs = [check_gain(app, g, f"gains[{i}]") for i, g in enumerate(gains)]
+    if len(gs) < 3:
+        raise InputError(f"gains={list(gains)!r}: the cold-damping model needs >= 3 gains")
+    cal = nominal_calibration(app) if calibration is None else [
+        as_estimate(c, "calibration") for c in calibration]
+    if len(cal) != 3:
+        raise InputError(f"calibration must give 3 values (x, y, z), got {len(cal)}")
+    m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
+    motion = detectors[0]
+    fs, n = yield from configure_detector(app, motion, sample_rate, record_length)
+    analyzer = ModeAnalyzer(app.setup.trap.frequencies, nperseg=max(1024, n // 8),
+                            calibration=[c.value for c in cal],
+                            calibration_stderr=[c.stderr for c in cal], mass=m.value)
+    fitter = LiveFitter(analyzer)
+    md_ = run_metadata(app, "gain_sweep",
+                       {"gains": gs, "records_per_step": records_per_step,
+                        "settle_periods": settle_periods,
+                        "calibration": [c.value for c in cal], "mass": m.value}, md,
+                       dimensions=[(["gain"], "primary")])
+    values = DerivedValues("summary")
+
+    def body():
+        rec = Recorder(app, detectors, fitter)
+        steps: list[tuple[float, list[dict]]] = []
+        totals: list[float] = []
+        rises = 0
+        for g in gs:
+            yield from set_feedback(app, g)
+            yield from wait_lab(app, settle_periods / g)
+            for _ in range(records_per_step):
+                yield from rec.record()
+            yield from rec.flush()
+            fits = rec.fits[-records_per_step:]
+            steps.append((g, fits))
+            total = sum(np.nanmean([f[f"occupation_{a}"] for f in fits]) for a in AXES)
+            if totals and total > totals[-1]:
+                rises += 1
+            else:
+                rises = 0
+            totals.append(float(total))
+            if rises >= stop_after_rises:
+                break
+        pressure = float(np.nanmean([r["pressure"] for r in rec.primaries]))
+        values.update(_summarize_gain(app, steps, pressure))
+        values.put("calibration_source", "setup" if calibration is None else "measured", "")
+        values.put("steps_done", len(steps), "")
+        yield from emit_summary(values)
+        return values.values
+
+    return (yield from run_with_fitter(detectors, fitter, md_, body))
+
+
+def _summarize_gain(app: Apparatus, steps, pressure: float) -> dict:
+    out: dict = {"pressure": (pressure, "Pa")}
+    fitted = {}
+    for axis in AXES:
+        g, n, e = [], [], []
+        for gain, fits in steps:
+            ok = [f for f in fits if f.get(f"fit_status_{axis}") == "ok"]
+            if not ok:
+                continue
+            mean, err = weighted_mean([f[f"occupation_{axis}"] for f in ok],
+                                      [f[f"occupation_{axis}_stderr"] for f in ok])
+            if math.isfinite(mean):
+                g.append(gain)
+                n.append(mean)
+                e.append(err)
+        nan = Estimate(math.nan, math.nan)
+        try:
+            fit = fit_cold_damping(g, n, e)
+            fitted[axis] = fit
+            out[f"optimal_gain_{axis}"] = (fit.optimal_gain, "1/s")
+            out[f"min_occupation_{axis}"] = (fit.min_occupation, "quanta")
+            out[f"measurement_rate_{axis}"] = (fit.measurement_rate, "1/s")
+            out[f"decoherence_rate_{axis}"] = (fit.decoherence_rate, "quanta/s")
+        except (InputError, ValueError, RuntimeError) as exc:
+            out[f"optimal_gain_{axis}"] = (nan, "1/s")
+            out[f"min_occupation_{axis}"] = (nan, "quanta")
+            out[f"fit_status_{axis}"] = (f"{type(exc).__name__}: {exc}"[:300], "")
+    pred = predicted_cold_damping(app, pressure) if math.isfinite(pressure) else {}
+    for axis, (dec, meas) in pred.items():
+        g_opt, n_min = cold_damping_optimum(0.0, 0.0, meas, dec)
+        out[f"predicted_optimal_gain_{axis}"] = (g_opt, "1/s")
+        out[f"predicted_min_occupation_{axis}"] = (n_min, "quanta")
+    out["optimal_gain"] = (_total_optimum(fitted), "1/s")
+    return out
+
+
+def _total_optimum(fitted: dict) -> Estimate:
+    """Gain minimising the summed occupation of the fitted per-axis models (error by
+    drawing the model parameters from their fitted errors)."""
+    if not fitted:
+        return Estimate(math.nan, math.nan)
+    grid = np.geomspace(1.0, 1e7, 4000)
+
+    def best(params):
+        total = sum(cold_damping_occupation(grid, 0.0, 0.0, meas, dec) for dec, meas in params)
+        return float(grid[int(np.argmin(total))])
+
+    central = [(f.decoherence_rate.value, f.measurement_rate.value) for f in fitted.values()]
+    rng = np.random.default_rng(0)
+    draws = []
+    for _ in range(200):
+        params = [(max(rng.normal(f.decoherence_rate.value, f.decoherence_rate.stderr), 1e-9),
+                   max(rng.normal(f.measurement_rate.value, f.measurement_rate.stderr), 1e-9))
+                  for f in fitted.values()]
+        draws.append(best(params))
+    return Estimate(best(central), float(np.std(draws, ddof=1)))

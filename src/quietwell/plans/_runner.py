@@ -1,0 +1,66 @@
+"""Wrap a plan body into a run with staged detectors and the live fitter subscribed."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Generator, Sequence
+from typing import Any
+
+import bluesky.plan_stubs as bps
+import bluesky.preprocessors as bpp
+
+from .._errors import InputError
+from ..live import LiveFitter
+from ..physics import Estimate, sphere_mass
+from ._common import Apparatus
+
+__all__ = ["run_with_fitter", "configure_detector", "nominal_mass", "nominal_calibration",
+           "as_estimate"]
+
+
+def run_with_fitter(detectors: Sequence[Any], fitter: LiveFitter, md: dict,
+                    body: Callable[[], Generator]) -> Generator:
+    """Open a run around ``body()`` with ``detectors`` staged and ``fitter.feed`` subscribed.
+
+    The fitter's worker thread is closed however the run ends.
+    """
+    plan = bpp.run_wrapper(body(), md=md)
+    plan = bpp.stage_wrapper(plan, list(detectors))
+    plan = bpp.subs_wrapper(plan, {"all": [fitter.feed]})
+    plan = bpp.finalize_wrapper(plan, fitter.close)
+    return (yield from plan)
+
+
+def configure_detector(app: Apparatus, detector: Any, sample_rate: float | None,
+                       record_length: int | None) -> Generator:
+    """Plan stub: set the sample rate (Hz) and record length (samples) before staging."""
+    args: list = []
+    if sample_rate is not None:
+        args += [detector.sample_rate, float(sample_rate)]
+    if record_length is not None:
+        args += [detector.record_length, int(record_length)]
+    if args:
+        yield from bps.mv(*args)
+    rate = yield from bps.rd(detector.sample_rate)
+    length = yield from bps.rd(detector.record_length)
+    return float(rate), int(length)
+
+
+def as_estimate(value: Estimate | float, what: str) -> Estimate:
+    """An :class:`Estimate` from an Estimate or a plain number (error unknown: 0)."""
+    if isinstance(value, Estimate):
+        return value
+    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
+        raise InputError(f"{what}={value!r} is not a number; give a value in SI units")
+    return Estimate(float(value), 0.0)
+
+
+def nominal_mass(app: Apparatus) -> Estimate:
+    """Mass (kg) from the setup's nominal radius and density, with no error (a nominal)."""
+    p = app.setup.particle
+    return Estimate(float(sphere_mass(p.radius, p.density)), 0.0)
+
+
+def nominal_calibration(app: Apparatus) -> list[Estimate]:
+    """Calibration (V/m) per axis from the setup description, with no error (a nominal)."""
+    return [Estimate(c, 0.0) for c in app.setup.detector.calibration]
