@@ -23,7 +23,6 @@ from ..live import CombinedAnalyzer, DriveAnalyzer, LiveFitter, ModeAnalyzer
 from ..physics import AXES, E_CHARGE, Estimate, mass_from_drive, thermal_calibration
 from ._common import (
     Apparatus,
-    Recorder,
     check_pressures,
     emit_summary,
     run_metadata,
@@ -92,8 +91,7 @@ def thermal_calibration_plan(
     values = DerivedValues("summary")
     temperature = app.setup.temperature
 
-    def body():
-        rec = Recorder(app, detectors, fitter)
+    def body(rec):
         yield from set_feedback(app, None)
         yield from set_setpoint(app, p)
         yield from wait_lab(app, settle_time)
@@ -114,7 +112,7 @@ def thermal_calibration_plan(
         yield from emit_summary(values)
         return values.values
 
-    return (yield from run_with_fitter(detectors, fitter, md_, body))
+    return (yield from run_with_fitter(app, detectors, fitter, md_, body))
 
 
 def charge_calibration(
@@ -174,10 +172,9 @@ def charge_calibration(
     values = DerivedValues("summary")
     field = setup.electrodes.geometry_factor * drive_amplitude / setup.electrodes.distance
 
-    def body():
+    def body(rec):
         import bluesky.plan_stubs as bps
 
-        rec = Recorder(app, detectors, fitter)
         yield from set_feedback(app, None)
         yield from set_setpoint(app, p)
         el = app.electrodes
@@ -202,7 +199,7 @@ def charge_calibration(
         yield from emit_summary(values)
         return values.values
 
-    return (yield from run_with_fitter(detectors, fitter, md_, body))
+    return (yield from run_with_fitter(app, detectors, fitter, md_, body))
 
 
 def _summarize_charge(per_step, all_fits, field, f_drive, temperature) -> dict:

@@ -33,7 +33,6 @@ from ..physics import (
 )
 from ._common import (
     Apparatus,
-    Recorder,
     check_gain,
     emit_summary,
     run_metadata,
@@ -121,8 +120,7 @@ def gain_sweep(
                        dimensions=[(["gain"], "primary")])
     values = DerivedValues("summary")
 
-    def body():
-        rec = Recorder(app, detectors, fitter)
+    def body(rec):
         steps: list[tuple[float, list[dict]]] = []
         totals: list[float] = []
         rises = 0
@@ -149,7 +147,7 @@ def gain_sweep(
         yield from emit_summary(values)
         return values.values
 
-    return (yield from run_with_fitter(detectors, fitter, md_, body))
+    return (yield from run_with_fitter(app, detectors, fitter, md_, body))
 
 
 def _summarize_gain(app: Apparatus, steps, pressure: float) -> dict:

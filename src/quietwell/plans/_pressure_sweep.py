@@ -28,7 +28,6 @@ from ..physics import (
 )
 from ._common import (
     Apparatus,
-    Recorder,
     check_gain,
     check_pressures,
     emit_summary,
@@ -103,8 +102,7 @@ def pressure_sweep(
                        dimensions=[(["pressure"], "primary")])
     values = DerivedValues("summary")
 
-    def body():
-        rec = Recorder(app, detectors, fitter)
+    def body(rec):
         feedback_on = False
         step_flags: list[bool] = []
         for p in ps:
@@ -127,7 +125,7 @@ def pressure_sweep(
         yield from emit_summary(values)
         return values.values
 
-    return (yield from run_with_fitter(detectors, fitter, md_, body))
+    return (yield from run_with_fitter(app, detectors, fitter, md_, body))
 
 
 def set_setpoint(app: Apparatus, p: float):

@@ -104,8 +104,7 @@ def reheating_cycles(
                        dimensions=[(["seq_num"], "primary")])
     values = DerivedValues("summary")
 
-    def body():
-        rec = Recorder(app, detectors, fitter)
+    def body(rec):
         for _ in range(cycles):
             yield from set_feedback(app, gain)
             yield from wait_lab(app, on)
@@ -117,7 +116,7 @@ def reheating_cycles(
         yield from emit_summary(values)
         return values.values
 
-    return (yield from run_with_fitter(detectors, fitter, md_, body))
+    return (yield from run_with_fitter(app, detectors, fitter, md_, body))
 
 
 def _summarize(app: Apparatus, rec: Recorder, n_boot: int) -> dict:

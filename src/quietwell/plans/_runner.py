@@ -12,19 +12,23 @@ import bluesky.preprocessors as bpp
 from .._errors import InputError
 from ..live import LiveFitter
 from ..physics import Estimate, sphere_mass
-from ._common import Apparatus
+from ._common import Apparatus, Recorder
 
 __all__ = ["run_with_fitter", "configure_detector", "nominal_mass", "nominal_calibration",
            "as_estimate"]
 
 
-def run_with_fitter(detectors: Sequence[Any], fitter: LiveFitter, md: dict,
-                    body: Callable[[], Generator]) -> Generator:
-    """Open a run around ``body()`` with ``detectors`` staged and ``fitter.feed`` subscribed.
+def run_with_fitter(app: Apparatus, detectors: Sequence[Any], fitter: LiveFitter, md: dict,
+                    body: Callable[[Recorder], Generator]) -> Generator:
+    """Open a run around ``body(recorder)`` with ``detectors`` staged and ``fitter.feed``
+    subscribed.
 
-    The fitter's worker thread is closed however the run ends.
+    However the body ends (an exception, an abort), the fits of every completed record
+    are read into the run before it closes, and the fitter's thread is stopped after.
     """
-    plan = bpp.run_wrapper(body(), md=md)
+    rec = Recorder(app, detectors, fitter)
+    plan = bpp.finalize_wrapper(body(rec), rec.flush)
+    plan = bpp.run_wrapper(plan, md=md)
     plan = bpp.stage_wrapper(plan, list(detectors))
     plan = bpp.subs_wrapper(plan, {"all": [fitter.feed]})
     plan = bpp.finalize_wrapper(plan, fitter.close)

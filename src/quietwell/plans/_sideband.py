@@ -18,7 +18,6 @@ from ..live import CombinedAnalyzer, LiveFitter, ModeAnalyzer, SidebandAnalyzer
 from ..physics import AXES, Estimate, sideband_occupation
 from ._common import (
     Apparatus,
-    Recorder,
     check_gain,
     emit_summary,
     run_metadata,
@@ -72,8 +71,7 @@ def sideband_thermometry(
                        {"records": records, "axis": axis, "feedback_gain": gain}, md)
     values = DerivedValues("summary")
 
-    def body():
-        rec = Recorder(app, detectors, fitter)
+    def body(rec):
         if gain is not None:
             yield from set_feedback(app, gain)
             yield from wait_lab(app, settle_periods / gain)
@@ -101,4 +99,4 @@ def sideband_thermometry(
         yield from emit_summary(values)
         return values.values
 
-    return (yield from run_with_fitter(detectors, fitter, md_, body))
+    return (yield from run_with_fitter(app, detectors, fitter, md_, body))

@@ -1,0 +1,234 @@
+"""Acceptance of the measurement plans: a real RunEngine, sim devices, a real tiled store.
+
+Each derived number is compared with the simulation's ground truth, which the
+simulated laboratory computes from the physics core (itself checked against the
+published values in test_physics.py).
+"""
+
+from __future__ import annotations
+
+import bluesky.plan_stubs as bps
+import numpy as np
+import pytest
+from bluesky import RunEngine
+
+from quietwell import LimitError
+from quietwell import physics as qp
+from quietwell._profile import build_apparatus, connect_apparatus, find_profile
+from quietwell.physics import AXES, MBAR, Estimate
+from quietwell.plans import (
+    charge_calibration,
+    gain_sweep,
+    pressure_sweep,
+    reheating_cycles,
+    set_feedback,
+    sideband_thermometry,
+    thermal_calibration,
+)
+from quietwell.setup import load_setup
+from quietwell.store import EmbeddedStore
+
+pytestmark = pytest.mark.slow
+
+RATE = 1e6
+
+
+@pytest.fixture(scope="module")
+def bench(tmp_path_factory):
+    data = tmp_path_factory.mktemp("store")
+    with EmbeddedStore(data) as store:
+        RE = RunEngine({}, context_managers=[])
+        RE.subscribe(store.writer)
+        app = build_apparatus(load_setup(find_profile("amber")), store.raw_dir)
+        connect_apparatus(app)
+        yield RE, store, app, app.extras["lab"]
+
+
+def _summary(store, uid):
+    tbl = store.client[uid]["summary"].read()
+    return {k: np.asarray(tbl[k]).reshape(-1)[0] for k in tbl if k != "time"}
+
+
+def _go(RE, app, pressure_pa, gain=None):
+    def plan():
+        yield from set_feedback(app, gain)
+        yield from bps.mv(app.pressure, pressure_pa)
+
+    RE(plan())
+
+
+def test_limits_are_refused_before_anything_moves(bench):
+    RE, store, app, lab = bench
+    before = lab.truth().pressure
+    with pytest.raises(LimitError, match="outside the setup 'amber' limits"):
+        RE(pressure_sweep([app.detector], [1e6], apparatus=app))
+    with pytest.raises(LimitError, match="feedback_gain"):
+        RE(pressure_sweep([app.detector], [100.0], apparatus=app, feedback_gain=1e9))
+    assert lab.truth().pressure == before
+
+
+def test_pressure_sweep_gives_the_radius_and_keeps_the_particle(bench):
+    RE, store, app, lab = bench
+    _go(RE, app, 10 * MBAR)
+    pressures = [p * MBAR for p in (10, 6, 4, 2.5, 1.6, 0.6, 0.2, 1e-3)]
+    (uid,) = RE(pressure_sweep([app.detector], pressures, apparatus=app, records_per_step=2,
+                               feedback_gain=2000.0, sample_rate=RATE, record_length=2**19))
+    truth = lab.truth()
+    assert not truth.lost
+    assert np.all(truth.feedback_damping > 0)  # engaged on the way down
+    s = _summary(store, uid)
+    # Phys. Rev. 23, 710 (1924): R = 8 delta/(pi rho v s); truth is the sim's radius
+    assert abs(s["radius"] - truth.radius) < 0.03 * truth.radius
+    assert s["radius_stderr"] < 0.03 * truth.radius
+    assert abs(s["mass"] - truth.mass) < 3 * s["mass_stderr"] + 0.09 * truth.mass
+    run = store.client[uid]
+    start = run.metadata["start"]
+    assert start["plan_name"] == "pressure_sweep"
+    assert start["setup"] == "amber" and len(start["setup_sha256"]) == 64
+    assert start["sim_truth"]["charge_e"] == 7
+    assert set(start["sim_truth"]) >= {"radius_m", "mass_kg", "density_kg_m3", "charge_e",
+                                       "frequencies_hz", "calibration_v_per_m", "gas",
+                                       "temperature_k", "laser_power_w", "wavelength_m",
+                                       "waist_m"}
+    prim = run["primary"]
+    assert prim["trace_x"].shape == (16, 2**19)
+    p = np.asarray(prim["pressure"].read())
+    true_p = np.asarray(prim["sim_pressure"].read())
+    assert np.all(np.abs(p / true_p - 1) < 0.05)  # best gauge in range
+    fits = run["fits"].read()
+    assert len(fits["f0_x"]) == 16
+    units = run["summary"].metadata["descriptors"][0]["data_keys"]["radius"]["units"]
+    assert units == "m"
+
+
+def test_thermal_and_charge_calibration(bench):
+    RE, store, app, lab = bench
+    _go(RE, app, 3 * MBAR, gain=2000.0)
+    (uid_c,) = RE(charge_calibration(
+        [app.detector], [0, -1, -1, -1], apparatus=app, pressure=3 * MBAR,
+        drive_frequency=129e3, drive_amplitude=5.0, records_per_step=3, sample_rate=RATE,
+        record_length=2**17))
+    c = _summary(store, uid_c)
+    truth = lab.truth()
+    assert int(c["charge"]) == truth.charge + 3  # charge at the first step
+    assert abs(c["mass"] - truth.mass) < 0.05 * truth.mass
+    (uid_t,) = RE(thermal_calibration([app.detector], 3 * MBAR, apparatus=app, records=4,
+                                      mass=Estimate(c["mass"], c["mass_stderr"]),
+                                      sample_rate=RATE, record_length=2**19))
+    t = _summary(store, uid_t)
+    for i, a in enumerate(AXES):
+        true_c = app.setup.detector.calibration[i]
+        assert abs(t[f"calibration_{a}"] - true_c) < 0.03 * true_c
+    assert t["mass_source"] == "measured"
+
+
+def test_gain_sweep_minimum_follows_the_cold_damping_model(bench):
+    RE, store, app, lab = bench
+    _go(RE, app, 1e-8 * MBAR, gain=2000.0)
+    truth = lab.truth()
+    gains = list(np.geomspace(2e3, 1.2e5, 9))
+    (uid,) = RE(gain_sweep([app.detector], gains, apparatus=app, records_per_step=2,
+                           calibration=list(app.setup.detector.calibration), mass=truth.mass,
+                           sample_rate=RATE, record_length=2**17))
+    s = _summary(store, uid)
+    # Nature 524, 325 (2015) model with the sim's true rates: heating without feedback,
+    # and the imprecision heating per gain^2 that the feedback injects.
+    t = lab.truth()
+    for i, a in enumerate(AXES):
+        dec = float(t.gas_heating[i] + t.recoil_heating[i])
+        per_g2 = float(t.feedback_heating[i] / t.feedback_damping[i] ** 2)
+        gm = 1 / (16 * per_g2)
+        _, n_min = qp.cold_damping_optimum(float(t.gas_damping[i]), 0.0, gm, dec)
+        err = s[f"min_occupation_{a}_stderr"]
+        assert abs(s[f"min_occupation_{a}"] - n_min) < 3 * err, (a, s[f"min_occupation_{a}"],
+                                                                  n_min, err)
+
+
+def test_reheating_rates_match_gas_plus_recoil(bench):
+    RE, store, app, lab = bench
+    _go(RE, app, 1e-7 * MBAR, gain=2e4)
+    (uid,) = RE(reheating_cycles([app.detector], 120, apparatus=app, feedback_gain=2e4,
+                                 off_time=0.01, calibration=list(app.setup.detector.calibration),
+                                 mass=lab.truth().mass, sample_rate=RATE, n_boot=200))
+    s = _summary(store, uid)
+    t = lab.truth()
+    for i, a in enumerate(AXES):
+        expected = float(t.gas_heating[i] + t.recoil_heating[i])
+        rate, err = s[f"heating_rate_{a}"], s[f"heating_rate_{a}_stderr"]
+        assert err < 0.1 * rate
+        assert abs(rate - expected) < 3 * err, (a, rate, expected, err)
+        assert abs(s[f"predicted_heating_rate_{a}"] - expected) < 0.05 * expected
+    env = store.client[uid]["fits"].read()
+    assert np.asarray(env["envelope_x"]).shape[0] == 120
+
+
+@pytest.mark.parametrize("gain", [1.2e5, 2e4, 4e3])
+def test_sideband_occupation(bench, gain):
+    RE, store, app, lab = bench
+    _go(RE, app, 1e-8 * MBAR, gain=gain)
+    (uid,) = RE(sideband_thermometry([app.heterodyne], 6, apparatus=app, axis="z",
+                                     feedback_gain=gain))
+    s = _summary(store, uid)
+    n_true = float(lab.truth().occupation[2])
+    assert abs(s["occupation"] - n_true) < 3 * s["occupation_stderr"], (s, n_true)
+
+
+def _fail_on_record(lab, n, action):
+    """Make the n-th record of the simulated laboratory call ``action`` first."""
+    original = lab.record
+    calls = {"n": 0}
+
+    def record(*a, **k):
+        calls["n"] += 1
+        if calls["n"] == n:
+            action()
+        return original(*a, **k)
+
+    lab.record = record
+    return original
+
+
+def test_exception_mid_run_keeps_completed_records_and_says_how_it_ended(bench):
+    RE, store, app, lab = bench
+    _go(RE, app, 3 * MBAR, gain=None)
+
+    def boom():
+        raise RuntimeError("digitiser lost its clock")
+
+    original = _fail_on_record(lab, 3, boom)
+    try:
+        with pytest.raises(Exception, match="digitiser lost its clock"):
+            RE(thermal_calibration([app.detector], 3 * MBAR, apparatus=app, records=4,
+                                   sample_rate=RATE, record_length=2**16))
+    finally:
+        lab.record = original
+    run = store.client.values().last()
+    stop = run.metadata["stop"]
+    assert stop["exit_status"] == "fail"
+    assert "digitiser lost its clock" in stop["reason"]
+    assert run["primary"]["trace_x"].read().shape[0] == 2
+    assert len(run["fits"].read()["f0_x"]) == 2  # both completed records have their fits
+    assert "summary" not in run
+
+
+def test_ctrl_c_then_abort_keeps_completed_records(bench):
+    import os
+    import signal
+
+    from bluesky.utils import RunEngineInterrupted
+
+    RE, store, app, lab = bench
+    _go(RE, app, 3 * MBAR, gain=None)
+    original = _fail_on_record(lab, 3, lambda: os.kill(os.getpid(), signal.SIGINT))
+    try:
+        with pytest.raises(RunEngineInterrupted):
+            RE(thermal_calibration([app.detector], 3 * MBAR, apparatus=app, records=5,
+                                   sample_rate=RATE, record_length=2**16))
+        RE.abort("operator pressed Ctrl-C")
+    finally:
+        lab.record = original
+    run = store.client.values().last()
+    assert run.metadata["stop"]["exit_status"] == "abort"
+    n = run["primary"]["trace_x"].read().shape[0]
+    assert n >= 2
+    assert len(run["fits"].read()["f0_x"]) >= n - 1
