@@ -1,0 +1,97 @@
+"""A local journal of every document, so that batched catalog writes lose nothing.
+
+Writing each event to tiled as it arrives costs several HTTP round trips per record
+(see bench/RESULTS-store.md), so the embedded store batches its catalog writes. The
+journal closes the gap that batching opens: every document is appended to
+``DIR/journal/<run uid>.jsonl`` and flushed to disk before the next one, so if the
+process dies mid-run, :func:`replay_journal` rebuilds the run in the catalog from it
+(the raw traces are already on disk in ``DIR/raw``).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+__all__ = ["Journal", "replay_journal", "unfinished_runs"]
+
+
+def _jsonable(obj: Any) -> Any:
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return obj
+    raise TypeError(f"cannot journal a {type(obj).__name__}")
+
+
+class Journal:
+    """Document callback appending ``[name, doc]`` lines to one file per run."""
+
+    def __init__(self, directory: str | Path, fsync: bool = False) -> None:
+        self.directory = Path(directory)
+        self.directory.mkdir(parents=True, exist_ok=True)
+        self.fsync = fsync
+        self._files: dict[str, Any] = {}
+
+    def __call__(self, name: str, doc: dict) -> None:
+        if name == "start":
+            f = open(self.directory / f"{doc['uid']}.jsonl", "a", encoding="utf-8")  # noqa: SIM115
+            self._files[doc["uid"]] = f
+            self._write(f, name, doc)
+            return
+        uid = doc.get("run_start") if name in ("descriptor", "stop", "stream_resource") else None
+        targets = [self._files[uid]] if uid in self._files else list(self._files.values())
+        for f in targets[-1:]:
+            self._write(f, name, doc)
+        if name == "stop" and uid in self._files:
+            self._files.pop(uid).close()
+            done = self.directory / f"{uid}.jsonl"
+            done.rename(done.with_suffix(".done.jsonl"))
+
+    def _write(self, f, name: str, doc: dict) -> None:
+        f.write(json.dumps([name, doc], default=_jsonable) + "\n")
+        f.flush()
+        if self.fsync:
+            os.fsync(f.fileno())
+
+
+def unfinished_runs(directory: str | Path) -> list[Path]:
+    """Journals of runs that never received their stop document."""
+    return sorted(p for p in Path(directory).glob("*.jsonl") if not p.name.endswith(".done.jsonl"))
+
+
+def replay_journal(path: str | Path, client: Any, writer_factory) -> str:
+    """Rebuild the run of journal ``path`` in the catalog of ``client``.
+
+    A partial copy of the run in the catalog is deleted first; then every journalled
+    document goes to a fresh writer (``writer_factory()``). A run without a stop
+    document gets one with ``exit_status="abort"`` and a reason saying it was recovered.
+    Returns the run's uid.
+    """
+    docs = [json.loads(line) for line in Path(path).read_text(encoding="utf-8").splitlines()
+            if line.strip()]
+    if not docs or docs[0][0] != "start":
+        raise ValueError(f"{path}: not a run journal (no start document first)")
+    uid = docs[0][1]["uid"]
+    if uid in client:
+        client.delete_contents(uid, recursive=True, external_only=False)
+    writer = writer_factory()
+    last_time = docs[0][1]["time"]
+    for name, doc in docs:
+        writer(name, doc)
+        last_time = doc.get("time", last_time)
+    if docs[-1][0] != "stop":
+        import uuid
+
+        writer("stop", {"uid": str(uuid.uuid4()), "run_start": uid, "time": last_time,
+                        "exit_status": "abort",
+                        "reason": "recovered from the journal after the process stopped",
+                        "num_events": {}})
+    return uid

@@ -1,0 +1,62 @@
+"""The embedded store: batched catalog writes, a journal that loses nothing, recovery."""
+
+from __future__ import annotations
+
+import pathlib
+
+import bluesky.plans as bp
+import numpy as np
+import pytest
+from bluesky import RunEngine
+from ophyd.sim import det
+
+import quietwell
+from quietwell import InputError
+from quietwell.store import EmbeddedStore
+
+
+def test_run_survives_a_writer_that_dies_mid_run(tmp_path):
+    RE = RunEngine({}, context_managers=[])
+    with EmbeddedStore(tmp_path, batch_size=10) as st:
+        delivered = {"n": 0}
+
+        def dying_process(name, doc):
+            # the journal sees every document; the catalog writer stops after the 3rd,
+            # as if the process had been killed (its batched rows never flushed)
+            delivered["n"] += 1
+            st.writer.journal(name, doc)
+            if delivered["n"] <= 3:
+                st.writer.tiled(name, doc)
+
+        RE.subscribe(dying_process)
+        (uid,) = RE(bp.count([det], num=6))
+        journal = pathlib.Path(st.journal_dir) / f"{uid}.done.jsonl"
+        lines = journal.read_text().splitlines()
+        # a killed process never writes the stop document
+        journal.unlink()
+        (pathlib.Path(st.journal_dir) / f"{uid}.jsonl").write_text("\n".join(lines[:-1]) + "\n")
+        assert st.recover() == [uid]
+        run = st.client[uid]
+        assert run.metadata["stop"]["exit_status"] == "abort"
+        assert "recovered" in run.metadata["stop"]["reason"]
+        assert np.asarray(run["primary"].read()["det"]).size == 6
+
+
+def test_open_catalog_reads_a_closed_store_back(tmp_path):
+    RE = RunEngine({}, context_managers=[])
+    with EmbeddedStore(tmp_path) as st:
+        RE.subscribe(st.writer)
+        (uid,) = RE(bp.count([det], num=2), plan_tag="readback")
+    client = quietwell.open_catalog(tmp_path)
+    assert client[uid].metadata["start"]["plan_tag"] == "readback"
+
+
+def test_bad_data_dir_is_one_line(tmp_path):
+    f = tmp_path / "afile"
+    f.write_text("x")
+    with pytest.raises(InputError, match="is a file, not a directory"):
+        EmbeddedStore(f).open()
+    with pytest.raises(InputError, match="not a quietwell data directory"):
+        quietwell.open_catalog(tmp_path / "empty")
+    with pytest.raises(InputError, match="batch_size=0"):
+        EmbeddedStore(tmp_path, batch_size=0)
