@@ -97,7 +97,7 @@ def test_pressure_sweep_gives_the_radius_and_keeps_the_particle(bench):
     assert np.all(np.abs(p / true_p - 1) < 0.05)  # best gauge in range
     fits = run["fits"].read()
     assert len(fits["f0_x"]) == 16
-    units = run["summary"].metadata["descriptors"][0]["data_keys"]["radius"]["units"]
+    units = run["summary"].metadata["data_keys"]["radius"]["units"]
     assert units == "m"
 
 

@@ -2,10 +2,16 @@
 particle, its detector, feedback, trap laser and vacuum chamber, behind the same
 device interfaces as real instruments.
 
-This package is a plain, seedable physics model (numpy/scipy and
-:mod:`quietwell.physics` only); it never imports bluesky, ophyd or tiled and never
-sleeps on the wall clock. The device layer wraps :class:`SimLab`.
+The physics model (:class:`SimLab` and its parts) is plain and seedable (numpy/scipy
+and :mod:`quietwell.physics` only); it never imports bluesky, ophyd or tiled and never
+sleeps on the wall clock. :func:`lab_params_from_setup` maps a setup profile onto it.
+The device layer wraps :class:`SimLab` through the backends of ``_backends``
+(``SimMotion``, ``SimHeterodyne``, ``SimElectrodes``, ``SimCharge``, ``SimLaser``,
+``SimGauge``, ``SimPressure``, ``SimClockBackend``) and :func:`build_sim_apparatus`
+/ :func:`connect_apparatus`; these load bluesky and ophyd-async on first use only.
 """
+
+from typing import Any
 
 from ._chamber import (
     THERMAL_GAS_FACTORS,
@@ -28,6 +34,7 @@ from ._exact import (
     sample_parametric,
     transition_matrix,
 )
+from ._from_setup import lab_params_from_setup
 from ._lab import LabParams, Record, SimLab
 from ._particle import (
     AxisRates,
@@ -37,6 +44,29 @@ from ._particle import (
     TrapParams,
     electrode_field,
 )
+
+_LAZY = {
+    "build_sim_apparatus": "._from_setup",
+    "connect_apparatus": "._from_setup",
+    "SimMotion": "._backends",
+    "SimHeterodyne": "._backends",
+    "SimElectrodes": "._backends",
+    "SimCharge": "._backends",
+    "SimLaser": "._backends",
+    "SimGauge": "._backends",
+    "SimPressure": "._backends",
+    "SimClockBackend": "._backends",
+}
+
+
+def __getattr__(name: str) -> Any:
+    # The device-facing parts import bluesky/ophyd-async; load them only when asked.
+    if name in _LAZY:
+        import importlib
+
+        return getattr(importlib.import_module(_LAZY[name], __name__), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
 
 __all__ = [
     "AxisRates",
@@ -57,12 +87,23 @@ __all__ = [
     "Particle",
     "ParticleParams",
     "Record",
+    "SimCharge",
     "SimClock",
+    "SimClockBackend",
+    "SimElectrodes",
+    "SimGauge",
+    "SimHeterodyne",
     "SimLab",
+    "SimLaser",
+    "SimMotion",
+    "SimPressure",
     "THERMAL_GAS_FACTORS",
     "TrapParams",
+    "build_sim_apparatus",
+    "connect_apparatus",
     "electrode_field",
     "exact_step",
+    "lab_params_from_setup",
     "noise_covariance",
     "propagate_linear",
     "sample_linear",

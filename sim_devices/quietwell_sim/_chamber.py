@@ -26,10 +26,14 @@ Gauges read in Pa. Thermal-conductivity gauge (Pirani type): 5e-2 Pa ... 1e5 Pa
 :data:`THERMAL_GAS_FACTORS`. Ionization gauge: hot cathode, 1e-7 ... 1 Pa (1e-9 ...
 1e-2 mbar), stated accuracy +-15 % of reading, reading ``S_gas p_true`` with ``S``
 from :data:`quietwell.physics.GASES` (CRC Handbook), cathode off for protection
-above 5 Pa and on again below it (unless switched off by hand). Each instance
+above 5 Pa and on again below it (unless switched off by hand). Capacitance
+diaphragm gauge: a membrane's deflection, so gas-independent (gas factor 1),
+1e-2 ... 1.3e3 Pa (1e-4 ... 13 mbar, four decades below a 10 Torr head), stated
+accuracy +-0.25 % of reading (typically 0.2-0.5 %). Each instance
 carries a fixed calibration error drawn uniformly within 80 % of its accuracy plus
-a read noise within 10 % of it, and displays 3 significant digits (0.5 % at most),
-so that every reading is within the stated accuracy. Typical ranges and
+a read noise within 10 % of it, and displays 3 significant digits by default (0.5 %
+at most; give a 0.25 % capacitance gauge 5), so that every reading is within the
+stated accuracy. Typical ranges and
 accuracies: common practice (memory), see PHYSICS.md section 7.
 """
 
@@ -220,9 +224,17 @@ class Chamber:
         """Largest step in s (<= ``remaining``) over which the coefficients are held."""
         p = self.params
         h = min(remaining, 0.05 * (self.age + p.desorption_time))
-        if self.setpoint is not None and not self.settled:
+        # Fine steps only near the band, where they time the settling; far from it a
+        # step moves the pressure by a few per cent at most (outgassing-limited 1/a
+        # decay, or the fast pump-out at age ~0), so it cannot jump over the zone.
+        if self.setpoint is not None and not self.settled and self._near_band():
             h = min(h, max(0.25 * p.settle_hold, 1e-3))
         return h
+
+    def _near_band(self) -> bool:
+        assert self.setpoint is not None
+        zone = max(4.0 * self.params.settle_tolerance, 0.1)
+        return abs(self.pressure - self.setpoint) <= zone * self.setpoint
 
     def step(self, h: float) -> None:
         """Advance by ``h`` s with the valves held (exact exponential)."""
@@ -270,6 +282,15 @@ class GaugeKind(enum.StrEnum):
 
     THERMAL = "thermal-conductivity"
     ION = "ionization"
+    CAPACITANCE = "capacitance-diaphragm"
+
+
+#: Default (low, high) range in Pa and stated relative accuracy of each kind.
+_KIND_DEFAULTS: dict[GaugeKind, tuple[float, float, float]] = {
+    GaugeKind.THERMAL: (5e-2, 1e5, 0.15),
+    GaugeKind.ION: (1e-7, 1.0, 0.15),
+    GaugeKind.CAPACITANCE: (1e-2, 1.3e3, 0.0025),
+}
 
 
 @dataclass(frozen=True)
@@ -281,14 +302,18 @@ class GaugeParams:
     name : str
         Identifier (e.g. "pirani", "ion").
     kind : GaugeKind
-        Thermal conductivity (Pirani) or ionization (hot cathode).
+        Thermal conductivity (Pirani), ionization (hot cathode) or capacitance
+        diaphragm.
     low, high : float or None
         Range limits in Pa; ``None`` takes the kind's default (thermal 5e-2 ... 1e5,
-        ion 1e-7 ... 1).
+        ion 1e-7 ... 1, capacitance diaphragm 1e-2 ... 1.3e3).
     accuracy : float or None
-        Stated relative accuracy of reading; ``None``: 0.15 for both kinds.
+        Stated relative accuracy of reading; ``None``: 0.15 for thermal and ion,
+        0.0025 for capacitance diaphragm.
     digits : int
-        Displayed significant digits (default 3).
+        Displayed significant digits (default 3; the rounding, up to
+        ``5 * 10**-digits`` of reading, must stay well inside the accuracy, so a
+        0.25 % gauge needs 5).
     protect_pressure : float or None
         Ion gauge: the cathode switches off above this pressure in Pa (default 5 Pa).
     """
@@ -309,7 +334,7 @@ class GaugeParams:
     @property
     def range(self) -> tuple[float, float]:
         """(low, high) in Pa."""
-        lo, hi = (5e-2, 1e5) if self.kind is GaugeKind.THERMAL else (1e-7, 1.0)
+        lo, hi, _ = _KIND_DEFAULTS[self.kind]
         return (
             self.low if self.low is not None else lo,
             self.high if self.high is not None else hi,
@@ -318,7 +343,7 @@ class GaugeParams:
     @property
     def stated_accuracy(self) -> float:
         """Relative accuracy of reading."""
-        return 0.15 if self.accuracy is None else self.accuracy
+        return _KIND_DEFAULTS[self.kind][2] if self.accuracy is None else self.accuracy
 
 
 @dataclass(frozen=True)
@@ -372,6 +397,8 @@ class Gauge:
         gas = self._chamber.gas
         if self.params.kind is GaugeKind.ION:
             return ph.GASES[gas].ion_sensitivity
+        if self.params.kind is GaugeKind.CAPACITANCE:
+            return 1.0  # a diaphragm feels force per area, whatever the gas
         return THERMAL_GAS_FACTORS[gas]
 
     # faults

@@ -183,15 +183,27 @@ class Detector:
         clipped: dict[str, int] = {}
         for i, name in enumerate(("x", "y", "z")):
             volts[name], clipped[name] = adc(mixed[i], p.adc_range, p.adc_bits)
+        volts["intensity"], clipped["intensity"] = self.intensity(n, lost_from, power_ratio)
+        return volts, clipped
+
+    def intensity(
+        self, n: int, lost_from: int | None = None, power_ratio: float = 1.0
+    ) -> tuple[np.ndarray, int]:
+        """The total-intensity channel alone: float32 V and its clipped-sample count.
+
+        ``lost_from`` and ``power_ratio`` as in :meth:`convert` (which calls this last,
+        so a full record draws the same random numbers as before).
+        """
+        p = self.params
+        f32 = np.float32
         level = self._rng.standard_normal(n, dtype=f32)
-        level *= f32(p.intensity_noise * math.sqrt(fs / 2.0))
+        level *= f32(p.intensity_noise * math.sqrt(p.sample_rate / 2.0))
         if lost_from is None:
             level += f32(p.intensity_level * power_ratio)
         else:
             level[:lost_from] += f32(p.intensity_level * power_ratio)
             level[lost_from:] += f32(p.lost_intensity_level)
-        volts["intensity"], clipped["intensity"] = adc(level, p.adc_range, p.adc_bits)
-        return volts, clipped
+        return adc(level, p.adc_range, p.adc_bits)
 
 
 @dataclass(frozen=True)

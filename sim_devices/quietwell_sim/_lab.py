@@ -10,7 +10,8 @@ particle's motion, and a seed makes a run bit-for-bit reproducible.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from collections.abc import Iterable
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -172,39 +173,106 @@ class SimLab:
         self.clock.advance(dt)
         self.particle.time = self.chamber.time = self.clock.now
 
-    def record(self, n_samples: int | None = None) -> Record:
+    #: Every channel a record can hold; ``heterodyne`` only with heterodyne params.
+    CHANNELS = ("x", "y", "z", "intensity", "heterodyne")
+
+    def record(
+        self, n_samples: int | None = None, channels: Iterable[str] | None = None
+    ) -> Record:
         """Acquire one record of ``n_samples`` (default: the detector's record length).
 
         Advances the clock by the record duration. Pressure and settings are held
         over the record at their values at its start.
+
+        Parameters
+        ----------
+        n_samples : int or None
+            Samples per channel (>= 2).
+        channels : iterable of str or None
+            Which of :attr:`CHANNELS` to compute; ``None``: all there are. Only the
+            requested ones are computed, so a motion record skips the (costly)
+            heterodyne channel, and a record without ``x``, ``y``, ``z`` moves the
+            particle by its exact O(1) jump instead of sampling it.
         """
         det = self.params.detector
         n = det.record_length if n_samples is None else n_samples
         if int(n) != n or n < 2:
             raise InputError(f"n_samples={n!r} must be an integer >= 2")
         n = int(n)
+        available = self.CHANNELS if self.heterodyne is not None else self.CHANNELS[:4]
+        if channels is None:
+            want = set(available)
+        else:
+            want = {channels} if isinstance(channels, str) else set(channels)
+            bad = sorted(want - set(available))
+            if bad or not want:
+                raise InputError(
+                    f"channels={sorted(want)} must be a non-empty subset of {list(available)}"
+                    + ("; this lab has no heterodyne detector" if "heterodyne" in bad else "")
+                )
         fs = det.sample_rate
         dt = 1.0 / fs
         t0 = self.clock.now
         self.particle.set_pressure(self.chamber.pressure)
         truth = self.particle.truth()
         was_lost = self.particle.lost
-        x = self.particle.sample(n, dt)
+        motion = bool(want & {"x", "y", "z"})
+        if motion:
+            x = self.particle.sample(n, dt)
+        else:
+            self.particle.propagate(n * dt)
         lost_from: int | None = None
         if self.particle.lost:
             lt = self.particle.lost_time if self.particle.lost_time is not None else t0
             lost_from = 0 if was_lost else min(n, max(0, int(round((lt - t0) * fs))))
         power_ratio = self.particle.laser_power / self.params.trap.power
-        volts, clipped = self.detector.convert(x, lost_from, power_ratio)
-        if self.heterodyne is not None:
+        volts: dict[str, np.ndarray] = {}
+        clipped: dict[str, int] = {}
+        if motion:
+            volts, clipped = self.detector.convert(x, lost_from, power_ratio)
+        elif "intensity" in want:
+            volts["intensity"], clipped["intensity"] = self.detector.intensity(
+                n, lost_from, power_ratio
+            )
+        if "heterodyne" in want and self.heterodyne is not None:
             width = np.where(truth.total_damping > 0, truth.total_damping, 1e-3)
             volts["heterodyne"], clipped["heterodyne"] = self.heterodyne.record(
                 n, fs, t0, truth.occupation, truth.frequencies, width, trapped=not was_lost
             )
+        for name in [k for k in volts if k not in want]:
+            del volts[name], clipped[name]
         self.chamber.advance(n * dt)
         self.clock.advance(n * dt)
         self.particle.time = self.chamber.time = self.clock.now
         return Record(volts, fs, t0, truth, clipped)
+
+    def configure_detector(
+        self, sample_rate: float | None = None, adc_range: float | None = None
+    ) -> None:
+        """Set the digitiser's sample rate (Hz) and full scale (+-V) for the next records.
+
+        Values are checked as in :class:`DetectorParams` (rate within [1e3, 1e9] Hz,
+        range > 0); the random streams carry on.
+        """
+        det = self.params.detector
+        new = replace(
+            det,
+            sample_rate=det.sample_rate if sample_rate is None else float(sample_rate),
+            adc_range=det.adc_range if adc_range is None else float(adc_range),
+        )
+        if new != det:
+            self.params = replace(self.params, detector=new)
+            self.detector.params = new
+
+    def configure_heterodyne(self, adc_range: float) -> None:
+        """Set the heterodyne digitiser's full scale (+-V, > 0)."""
+        if self.heterodyne is None:
+            raise InputError("this lab has no heterodyne detector; add HeterodyneParams")
+        if not (math.isfinite(adc_range) and adc_range > 0):
+            raise InputError(f"{adc_range=} V must be finite and > 0")
+        het = replace(self.heterodyne.params, adc_range=float(adc_range))
+        self.params = replace(self.params, heterodyne=het)
+        self.heterodyne.params = het
 
     # ------------------------------------------------------------- settings
     def set_pressure_setpoint(self, pressure: float | None) -> None:
@@ -228,6 +296,15 @@ class SimLab:
     def set_laser_power(self, power: float) -> None:
         """Power in the focus in W (refused outside ``(0, max_power]``)."""
         self.particle.set_laser_power(power)
+
+    def laser_off(self) -> None:
+        """Stop the trap light: with no trap the particle falls out, lost for good.
+
+        The laser power the particle saw is kept (the model has no zero-power trap);
+        from now on records hold only detector noise and the lost-intensity level.
+        """
+        if not self.particle.lost:
+            self.particle._mark_lost(self.clock.now)
 
     def set_feedback_damping(self, gamma_fb: ArrayLike) -> None:
         """Cold-damping gains as added damping in 1/s, scalar or (x, y, z)."""

@@ -99,8 +99,7 @@ def energy_envelope(
     x = np.asarray(trace_v, dtype=np.float64) / calibration
     n_win = x.size // window_samples
     if n_win < 1:
-        raise InputError(f"{window_samples=} must be <= the record length {x.size}; "
-                         "use a shorter window")
+        raise InputError(f"{window_samples=} must be <= the record length {x.size}; use a shorter window")
     x = x[: n_win * window_samples]
     t = np.arange(x.size) / sample_rate
     omega0 = 2.0 * np.pi * f0
@@ -109,12 +108,17 @@ def energy_envelope(
     mean_sq = np.abs(z) ** 2 - s_floor * sample_rate / (2.0 * window_samples)
     energy = 2.0 * mass * omega0**2 * mean_sq
     centres = (np.arange(n_win) + 0.5) * window_samples / sample_rate
-    return EnergyEnvelope(centres, occupation_from_energy(energy, omega0),
-                          sample_rate / window_samples)
+    return EnergyEnvelope(centres, occupation_from_energy(energy, omega0), sample_rate / window_samples)
 
 
-def occupation_from_area(area_v2: float, area_v2_stderr: float, calibration: float,
-                         calibration_stderr: float, mass: float, f0: float) -> Estimate:
+def occupation_from_area(
+    area_v2: float,
+    area_v2_stderr: float,
+    calibration: float,
+    calibration_stderr: float,
+    mass: float,
+    f0: float,
+) -> Estimate:
     """Occupation from a calibrated peak area: ``n = m Omega0 <x**2>/hbar - 1/2``.
 
     ``area_v2`` in V**2, ``calibration`` in V/m, ``mass`` in kg, ``f0`` in Hz.
@@ -154,9 +158,12 @@ def fit_line(x: ArrayLike, y: ArrayLike, sigma: ArrayLike) -> LinearFit:
     chi2 = float(np.sum(w * (y - slope * x - intercept) ** 2) / (x.size - 2))
     inflate = max(1.0, chi2)
     cov = cov * inflate
-    return LinearFit(Estimate(float(slope), float(np.sqrt(cov[0, 0]))),
-                     Estimate(float(intercept), float(np.sqrt(cov[1, 1]))), float(cov[0, 1]),
-                     chi2)
+    return LinearFit(
+        Estimate(float(slope), float(np.sqrt(cov[0, 0]))),
+        Estimate(float(intercept), float(np.sqrt(cov[1, 1]))),
+        float(cov[0, 1]),
+        chi2,
+    )
 
 
 @dataclass(frozen=True)
@@ -194,8 +201,9 @@ def _fit_rates(t: np.ndarray, mean: np.ndarray, sem: np.ndarray, gamma: float):
         return reheating_curve(tt, n0_, rate, gamma)
 
     try:
-        popt, _ = optimize.curve_fit(model, t, mean, p0=(n0, max(lin.slope.value, 1e-12)),
-                                     sigma=sem, absolute_sigma=True, maxfev=2000)
+        popt, _ = optimize.curve_fit(
+            model, t, mean, p0=(n0, max(lin.slope.value, 1e-12)), sigma=sem, absolute_sigma=True, maxfev=2000
+        )
         rate_exp = float(popt[1])
     except RuntimeError as exc:
         raise FitError(f"exponential reheating model did not converge ({exc})") from None
@@ -250,9 +258,15 @@ def fit_heating_rate(
         pick = n[rng.integers(0, n.shape[0], n.shape[0])]
         boot[i] = _fit_rates(t, *stats(pick), gamma)
     err = boot.std(axis=0, ddof=1)
-    return HeatingRateFit(Estimate(lin, float(err[0])), Estimate(expo, float(err[1])),
-                          Estimate(n0, float(err[2])), t, mean, n.std(axis=0, ddof=1),
-                          n.shape[0])
+    return HeatingRateFit(
+        Estimate(lin, float(err[0])),
+        Estimate(expo, float(err[1])),
+        Estimate(n0, float(err[2])),
+        t,
+        mean,
+        n.std(axis=0, ddof=1),
+        n.shape[0],
+    )
 
 
 @dataclass(frozen=True)
@@ -293,16 +307,16 @@ def fit_cold_damping(
         raise InputError(f"the cold-damping model needs at least 3 gains, got {g.size}")
 
     def model(gg, log_dec, log_meas):
-        return cold_damping_occupation(gg, gamma, 0.0, np.exp(log_meas),
-                                       np.exp(log_dec) - gamma * 0.5)
+        return cold_damping_occupation(gg, gamma, 0.0, np.exp(log_meas), np.exp(log_dec) - gamma * 0.5)
 
     # closed-form start: at the smallest gain heating dominates, at the largest noise
     i_lo, i_hi = int(np.argmin(g)), int(np.argmax(g))
     dec0 = max((n[i_lo] + 0.5) * (gamma + g[i_lo]), 1e-9)
     meas0 = max(g[i_hi] ** 2 / (16.0 * max((n[i_hi] + 0.5) * (gamma + g[i_hi]), 1e-9)), 1e-9)
     try:
-        popt, pcov = optimize.curve_fit(model, g, n, p0=(math.log(dec0), math.log(meas0)),
-                                        sigma=s, absolute_sigma=True, maxfev=5000)
+        popt, pcov = optimize.curve_fit(
+            model, g, n, p0=(math.log(dec0), math.log(meas0)), sigma=s, absolute_sigma=True, maxfev=5000
+        )
     except RuntimeError as exc:
         raise FitError(f"cold-damping model did not converge ({exc})") from None
     chi2 = float(np.sum(((n - model(g, *popt)) / s) ** 2) / max(g.size - 2, 1))
@@ -328,8 +342,7 @@ def fit_cold_damping(
     )
 
 
-def drive_phasor(trace_v: ArrayLike, sample_rate: float, f_drive: float,
-                 phase_ref: float = 0.0) -> complex:
+def drive_phasor(trace_v: ArrayLike, sample_rate: float, f_drive: float, phase_ref: float = 0.0) -> complex:
     """Complex amplitude (V) of the line at ``f_drive`` (Hz), relative to a
     ``cos(Omega_d t + phase_ref)`` reference starting at the first sample.
 
@@ -361,8 +374,9 @@ class IntegerChargeFit:
     residual: float
 
 
-def fit_integer_charge(amplitudes: Sequence[float], amplitude_errors: Sequence[float],
-                       steps: Sequence[int]) -> IntegerChargeFit:
+def fit_integer_charge(
+    amplitudes: Sequence[float], amplitude_errors: Sequence[float], steps: Sequence[int]
+) -> IntegerChargeFit:
     """Integer charge from signed drive amplitudes measured after known charge changes.
 
     ``a_k = alpha (N0 + steps_k)``: a weighted line through ``(steps, a)`` gives
@@ -373,9 +387,11 @@ def fit_integer_charge(amplitudes: Sequence[float], amplitude_errors: Sequence[f
     a, e, k = (np.asarray(v, dtype=float) for v in (amplitudes, amplitude_errors, steps))
     line = fit_line(k, a, e)
     if abs(line.slope.value) < 3 * line.slope.stderr:
-        raise FitError("the drive response does not change with the charge steps "
-                       f"(slope {line.slope.value:.3g} ± {line.slope.stderr:.3g}); "
-                       "check the discharge control and the drive tone")
+        raise FitError(
+            "the drive response does not change with the charge steps "
+            f"(slope {line.slope.value:.3g} ± {line.slope.stderr:.3g}); "
+            "check the discharge control and the drive tone"
+        )
     n0 = line.intercept.value / line.slope.value
     charge = int(round(n0))
     counts = charge + k
@@ -384,5 +400,3 @@ def fit_integer_charge(amplitudes: Sequence[float], amplitude_errors: Sequence[f
     alpha_err = float(1.0 / math.sqrt(np.sum(w * counts**2)))
     residual = float(np.max(np.abs(a / alpha - counts)))
     return IntegerChargeFit(charge, Estimate(alpha, alpha_err), residual)
-
-

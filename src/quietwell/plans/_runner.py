@@ -31,8 +31,14 @@ def run_with_fitter(app: Apparatus, detectors: Sequence[Any], fitter: LiveFitter
     plan = bpp.run_wrapper(plan, md=md)
     plan = bpp.stage_wrapper(plan, list(detectors))
     plan = bpp.subs_wrapper(plan, {"all": [fitter.feed]})
-    plan = bpp.finalize_wrapper(plan, fitter.close)
+    plan = bpp.finalize_wrapper(plan, _close(fitter))
     return (yield from plan)
+
+
+def _close(fitter: LiveFitter) -> Generator:
+    # a generator, so that the fitter closes when the wrapper's ``finally`` runs it
+    fitter.close()
+    yield from ()
 
 
 def configure_detector(app: Apparatus, detector: Any, sample_rate: float | None,

@@ -33,7 +33,7 @@ __all__ = [
     "setup_from_dict",
 ]
 
-GAUGE_KINDS = ("thermal_conductivity", "ionization")
+GAUGE_KINDS = ("thermal_conductivity", "ionization", "capacitance_diaphragm")
 
 
 @dataclass(frozen=True)

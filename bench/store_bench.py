@@ -1,0 +1,702 @@
+"""Cost of storing one detector record through quietwell, against bare h5py.
+
+    python bench/store_bench.py            # full run (about 10 minutes on 2 cores)
+    python bench/store_bench.py --quick    # smaller run (about 3 minutes)
+    python bench/store_bench.py --src /tmp/scratch/src   # a scratch copy of quietwell
+
+Paths compared side by side in one process, interleaved (plugin, h5py, plugin, ...):
+
+plugin
+    a ``bluesky.RunEngine`` running ``count`` of N records of a
+    ``quietwell.devices.MotionDetector`` (4 float32 channels) into a
+    ``quietwell.store.EmbeddedStore``: event documents, one external SWMR HDF5 file,
+    stream_resource / stream_datum registration through ``TiledWriter(batch_size=1)``.
+    The backend returns precomputed random arrays, so generating them costs nothing.
+h5py
+    the same arrays written with h5py alone, in the same layout: one file, one
+    ``(records, samples)`` float32 dataset per channel with ``(1, samples)`` chunks,
+    plus the per-record ``start_time`` and ``sample_rate`` datasets, SWMR, resized,
+    written and flushed per record.
+
+Per-record cost is measured honestly: each path runs N and 2N records, and
+``per record = (T(2N) - T(N)) / N``; the rest, ``T(N) - N * per record``, is the fixed
+cost of a run (open_run, stage, file creation, unstage, close_run, for the plugin).
+Starting the tiled server is timed separately and is in neither figure.  Each
+timing is the minimum over ``--repeat`` interleaved runs.
+
+The figures are printed as a table and written to ``bench/RESULTS-store.md``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import cProfile
+import io
+import math
+import os
+import platform
+import pstats
+import queue
+import shutil
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from collections import defaultdict
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+
+CHANNELS = ("x", "y", "z", "intensity")
+SAMPLES = 2**18
+BIG_SAMPLES = 2**20
+RATE_HZ = 1e6
+GOAL = 1.5
+
+
+# ------------------------------------------------------------------ framework
+
+
+@dataclass
+class Row:
+    """One line of the results table."""
+
+    name: str
+    value: str
+    goal: str = ""
+    verdict: str = ""  # "PASS", "FAIL" or "" (for information)
+
+
+@dataclass
+class Config:
+    quick: bool
+    repeat: int
+    n_records: int
+    n_big: int
+    work: Path
+    src: Path
+
+
+def _mb(n_bytes: float) -> str:
+    return f"{n_bytes / 2**20:.1f} MiB"
+
+
+def _ms(seconds: float) -> str:
+    return f"{seconds * 1e3:.1f} ms"
+
+
+# ------------------------------------------------------------- in-memory backend
+
+
+class CannedBackend:
+    """A ``MotionBackend`` that hands out precomputed random float32 records.
+
+    Two different record sets are made once and returned alternately, so no cost
+    of generating data reaches the timed paths (only building the small frozen
+    record object around the arrays).
+    """
+
+    def __init__(self, samples: int, seed: int = 7) -> None:
+        from quietwell.devices import RecordData
+
+        self._record_type = RecordData
+        rng = np.random.default_rng(seed)
+        self.sets = [
+            {ch: rng.standard_normal(samples, dtype=np.float32) * 0.1 for ch in CHANNELS}
+            for _ in range(2)
+        ]
+        self.samples = samples
+        self.calls = 0
+        self.rate = RATE_HZ
+
+    async def configure(self, sample_rate_hz: float, input_range_v: float) -> None:
+        self.rate = float(sample_rate_hz)
+
+    async def record(self, n_samples: int):
+        if n_samples != self.samples:
+            raise ValueError(f"CannedBackend holds {self.samples}-sample records, not {n_samples}")
+        arrays = self.sets[self.calls % 2]
+        t0 = self.calls * n_samples / self.rate
+        self.calls += 1
+        return self._record_type(sample_rate_hz=self.rate, start_time_s=t0, **arrays)
+
+
+# ------------------------------------------------------------------ plugin path
+
+
+class PluginPath:
+    """RunEngine + MotionDetector + a store (``EmbeddedStore`` unless told otherwise)."""
+
+    def __init__(self, store, samples: int, writer: Callable | None = None) -> None:
+        from bluesky import RunEngine
+
+        self.store = store
+        self.samples = samples
+        self.backend = CannedBackend(samples)
+        self.RE = RunEngine({}, call_returns_result=False)
+        self.writer = writer if writer is not None else store.writer
+        self.RE.subscribe(self.writer)
+        self.raw_dir = Path(store.raw_dir)
+        self.det = self._make_detector()
+
+    def _make_detector(self):
+        from bluesky.run_engine import call_in_bluesky_event_loop
+        from ophyd_async.core import StaticPathProvider, UUIDFilenameProvider
+
+        from quietwell.devices import MotionDetector
+
+        det = MotionDetector(
+            self.backend,
+            StaticPathProvider(UUIDFilenameProvider(), self.raw_dir),
+            max_sample_rate_hz=RATE_HZ,
+            max_record_length=self.samples,
+            input_ranges_v=(1.0,),
+            sample_rate_hz=RATE_HZ,
+            record_length=self.samples,
+            input_range_v=1.0,
+            name="psd",
+        )
+        call_in_bluesky_event_loop(det.connect())
+        return det
+
+    def run(self, n: int) -> tuple[float, str]:
+        """Wall time in s of one ``count`` of ``n`` records, and the run's uid."""
+        import bluesky.plans as bp
+
+        t0 = time.perf_counter()
+        (uid,) = self.RE(bp.count([self.det], num=n))
+        drain = getattr(self.writer, "drain", None)
+        if drain is not None:
+            drain()  # a threaded writer has finished only when its queue is empty
+        return time.perf_counter() - t0, uid
+
+    def remove_files(self) -> None:
+        for f in self.raw_dir.glob("*.h5"):
+            f.unlink()
+
+
+# -------------------------------------------------------------------- h5py path
+
+
+def h5py_run(path: Path, n: int, sets: list[dict[str, np.ndarray]], samples: int) -> float:
+    """Wall time in s of writing ``n`` records with h5py alone (the plugin's layout)."""
+    import h5py
+
+    t0 = time.perf_counter()
+    with h5py.File(path, "w", libver="latest") as f:
+        traces = {}
+        for ch in CHANNELS:
+            ds = f.create_dataset(
+                f"/traces/{ch}",
+                shape=(0, samples),
+                maxshape=(None, samples),
+                chunks=(1, samples),
+                dtype=np.float32,
+            )
+            ds.attrs["units"] = "V"
+            traces[ch] = ds
+        start = f.create_dataset(
+            "/records/start_time", shape=(0,), maxshape=(None,), chunks=(1024,), dtype="f8"
+        )
+        rate = f.create_dataset(
+            "/records/sample_rate", shape=(0,), maxshape=(None,), chunks=(1024,), dtype="f8"
+        )
+        f.swmr_mode = True
+        for i in range(n):
+            arrays = sets[i % 2]
+            for ch, ds in traces.items():
+                ds.resize(i + 1, axis=0)
+                ds[i] = arrays[ch]
+                ds.flush()
+            for ds, value in ((start, i * samples / RATE_HZ), (rate, RATE_HZ)):
+                ds.resize(i + 1, axis=0)
+                ds[i] = value
+                ds.flush()
+    dt = time.perf_counter() - t0
+    path.unlink()
+    return dt
+
+
+# -------------------------------------------------------------------- measuring
+
+
+@dataclass
+class PerRecord:
+    """Figures of one path from runs of N and 2N records."""
+
+    t_n: float
+    t_2n: float
+    n: int
+
+    @property
+    def per_record(self) -> float:
+        return (self.t_2n - self.t_n) / self.n
+
+    @property
+    def fixed(self) -> float:
+        return self.t_n - self.n * self.per_record
+
+
+def compare(plugin: PluginPath, h5dir: Path, n: int, repeat: int) -> tuple[PerRecord, PerRecord]:
+    """Interleaved N / 2N runs of both paths; minimum wall time of each."""
+    best = defaultdict(lambda: math.inf)
+    sets = plugin.backend.sets
+    samples = plugin.samples
+    for _ in range(repeat):
+        for k in (n, 2 * n):
+            t, _uid = plugin.run(k)
+            plugin.remove_files()
+            best[("plugin", k)] = min(best[("plugin", k)], t)
+            t = h5py_run(h5dir / "baseline.h5", k, sets, samples)
+            best[("h5py", k)] = min(best[("h5py", k)], t)
+    return (
+        PerRecord(best[("plugin", n)], best[("plugin", 2 * n)], n),
+        PerRecord(best[("h5py", n)], best[("h5py", 2 * n)], n),
+    )
+
+
+def check_round_trip(plugin: PluginPath) -> None:
+    """The plugin path really stores the records: read two back through tiled."""
+    _t, uid = plugin.run(2)
+    primary = plugin.store.client[uid]["primary"]
+    for ch in CHANNELS:
+        got = np.asarray(primary[f"trace_{ch}"].read())
+        want = np.stack([plugin.backend.sets[i % 2][ch] for i in range(2)])
+        if got.shape != want.shape or not np.array_equal(got, want):
+            raise SystemExit(f"round trip failed for trace_{ch}: got shape {got.shape}")
+    plugin.remove_files()
+
+
+def open_store(directory: Path):
+    from quietwell.store import EmbeddedStore
+
+    t0 = time.perf_counter()
+    store = EmbeddedStore(directory).open()
+    return store, time.perf_counter() - t0
+
+
+# --------------------------------------------------------------------- sections
+
+
+def section_per_record(cfg: Config, out: dict) -> list[Row]:
+    """The goal: plugin cost per record <= 1.5 x the h5py cost, at 2**18 samples."""
+    store, t_start = open_store(cfg.work / "store-a")
+    try:
+        plugin = PluginPath(store, SAMPLES)
+        check_round_trip(plugin)
+        p, h = compare(plugin, cfg.work, cfg.n_records, cfg.repeat)
+    finally:
+        t0 = time.perf_counter()
+        store.close()
+        t_close = time.perf_counter() - t0
+    ratio = p.per_record / h.per_record
+    size = len(CHANNELS) * SAMPLES * 4
+    out["main"] = dict(p=p, h=h, ratio=ratio, t_start=t_start, t_close=t_close, size=size)
+    n = cfg.n_records
+    return [
+        Row("record size (4 ch x 2^18 float32)", _mb(size)),
+        Row(f"(a) plugin, per record (runs of {n} and {2 * n})", _ms(p.per_record)),
+        Row(f"(b) h5py, per record (runs of {n} and {2 * n})", _ms(h.per_record)),
+        Row("(c) plugin / h5py per record", f"{ratio:.2f}x", f"<= {GOAL}x",
+            "PASS" if ratio <= GOAL else "FAIL"),
+        Row("plugin fixed cost per run (open/stage/close)", _ms(p.fixed)),
+        Row("h5py fixed cost per run (file create/close)", _ms(h.fixed)),
+        Row(f"plugin run of {n} records, all in", _ms(p.t_n),
+            "", ""),
+        Row("server start / stop (in neither figure)", f"{_ms(t_start)} / {_ms(t_close)}"),
+    ]
+
+
+def section_big_record(cfg: Config, out: dict) -> list[Row]:
+    """For information: the same comparison at 2**20 samples per channel."""
+    store, _t = open_store(cfg.work / "store-b")
+    try:
+        plugin = PluginPath(store, BIG_SAMPLES)
+        p, h = compare(plugin, cfg.work, cfg.n_big, cfg.repeat)
+    finally:
+        store.close()
+    size = len(CHANNELS) * BIG_SAMPLES * 4
+    ratio = p.per_record / h.per_record
+    out["big"] = dict(p=p, h=h, ratio=ratio, size=size)
+    return [
+        Row("record size (4 ch x 2^20 float32)", _mb(size)),
+        Row("plugin, per record at 2^20", _ms(p.per_record)),
+        Row("h5py, per record at 2^20", _ms(h.per_record)),
+        Row("plugin / h5py per record at 2^20", f"{ratio:.2f}x", "(information)"),
+        Row("plugin fixed cost per run at 2^20", _ms(p.fixed)),
+    ]
+
+
+class _TimedWriter:
+    """Wraps a document callback and adds up the time spent in it per document name."""
+
+    def __init__(self, target: Callable) -> None:
+        self.target = target
+        self.spent: dict[str, float] = defaultdict(float)
+        self.count: dict[str, int] = defaultdict(int)
+
+    def __call__(self, name, doc):
+        t0 = time.perf_counter()
+        self.target(name, doc)
+        self.spent[name] += time.perf_counter() - t0
+        self.count[name] += 1
+
+
+def _count_http(client) -> tuple[dict, Callable[[], None]]:
+    """Count the client's HTTP requests by method (an httpx event hook, removed after)."""
+    counts: dict[str, int] = defaultdict(int)
+    http = client.context.http_client
+
+    def hook(request):
+        counts[request.method] += 1
+
+    http.event_hooks["request"].append(hook)
+    return counts, lambda: http.event_hooks["request"].remove(hook)
+
+
+def section_where_time_goes(cfg: Config, out: dict) -> list[Row]:
+    """Break the plugin's per-record time down (writer per document, HDF5, the rest)."""
+    from quietwell.devices import _trace_file
+
+    store, _t = open_store(cfg.work / "store-c")
+    n = cfg.n_records
+    timed = _TimedWriter(store.writer)
+    append_time = [0.0]
+    original = _trace_file.TraceFile.append
+
+    def timed_append(self, *args, **kwargs):
+        t0 = time.perf_counter()
+        original(self, *args, **kwargs)
+        append_time[0] += time.perf_counter() - t0
+
+    _trace_file.TraceFile.append = timed_append
+    try:
+        plugin = PluginPath(store, SAMPLES, writer=timed)
+        plugin.run(2)  # warm
+        timed.spent.clear()
+        timed.count.clear()
+        append_time[0] = 0.0
+        counts, unhook = _count_http(store.client)
+        total, _uid = plugin.run(n)
+        unhook()
+        spent, count, appended = dict(timed.spent), dict(timed.count), append_time[0]
+        plugin.remove_files()
+        # The RunEngine runs its plan in its own thread: profile that thread.
+        from bluesky.run_engine import call_in_bluesky_event_loop
+
+        prof = cProfile.Profile()
+
+        async def _on():
+            prof.enable()
+
+        async def _off():
+            prof.disable()
+
+        call_in_bluesky_event_loop(_on())
+        plugin.run(n)
+        call_in_bluesky_event_loop(_off())
+        plugin.remove_files()
+    finally:
+        _trace_file.TraceFile.append = original
+        store.close()
+    text = io.StringIO()
+    pstats.Stats(prof, stream=text).sort_stats("cumulative").print_stats(30)
+    out["profile_text"] = text.getvalue()
+    per = {k: v / n for k, v in spent.items()}
+    writer_total = sum(spent.values())
+    steady = spent["event"] + spent["stream_datum"]
+    rest = total - writer_total - appended
+    out["breakdown"] = dict(
+        total=total, writer=spent, counts=count, append=appended, rest=rest,
+        http=dict(counts), n=n,
+    )
+    n_http = sum(counts.values())
+    return [
+        Row(f"run of {n} records, all in", _ms(total)),
+        Row("  writer: event documents, per record", _ms(per.get("event", 0.0))),
+        Row("  writer: stream_datum (4 per record), per record", _ms(per.get("stream_datum", 0.0))),
+        Row("  writer: start/descriptor/stream_resource/stop, per run",
+            _ms(writer_total - steady)),
+        Row("  HDF5 append+flush inside the detector, per record", _ms(appended / n)),
+        Row("  RunEngine, ophyd-async, checks (the rest), per record", _ms(rest / n)),
+        Row("  HTTP requests of the writer per run / per record",
+            f"{n_http} / {n_http / n:.1f}"),
+    ]
+
+
+# -------------------------------------------------------- variants (proposals)
+
+
+class ThreadedWriter:
+    """Document callback run in one worker thread, in order, with ``drain()``.
+
+    Bench-only model of proposal P1: the RunEngine hands documents to a queue and goes
+    on; the writer thread does the HTTP.  ``drain()`` waits until every document is
+    written, and re-raises the first error the writer met.
+    """
+
+    def __init__(self, target: Callable) -> None:
+        self._target = target
+        self._queue: queue.Queue = queue.Queue()
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._work, daemon=True)
+        self._thread.start()
+
+    def _work(self) -> None:
+        while True:
+            item = self._queue.get()
+            try:
+                if item is None:
+                    return
+                if self._error is None:
+                    self._target(*item)
+            except BaseException as exc:  # kept and re-raised by drain()
+                self._error = exc
+            finally:
+                self._queue.task_done()
+
+    def __call__(self, name, doc) -> None:
+        if self._error is not None:
+            raise RuntimeError(f"store writer failed earlier: {self._error!r}")
+        self._queue.put((name, doc))
+
+    def drain(self) -> None:
+        self._queue.join()
+        if self._error is not None:
+            raise RuntimeError(f"store writer failed: {self._error!r}")
+
+    def close(self) -> None:
+        self._queue.put(None)
+        self._thread.join()
+
+
+_SERVER_SCRIPT = r"""
+import sys, time
+from tiled.server import SimpleTiledServer
+with SimpleTiledServer(directory=sys.argv[1], readable_storage=[sys.argv[2]]) as s:
+    print(s.uri, flush=True)
+    sys.stdin.read()
+"""
+
+
+class ProcessStore:
+    """Bench-only model of proposal P2: the same tiled server in a child process.
+
+    Same directories and writer settings as ``EmbeddedStore``; only the server runs in
+    its own interpreter (its own GIL, the second core).
+    """
+
+    def __init__(self, data_dir: Path) -> None:
+        from bluesky_tiled_plugins import TiledWriter
+        from tiled.client import from_uri
+
+        self.data_dir = data_dir
+        self.raw_dir = data_dir / "raw"
+        self.backup_dir = data_dir / "backup"
+        for d in ("raw", "catalog", "backup"):
+            (data_dir / d).mkdir(parents=True, exist_ok=True)
+        self._proc = subprocess.Popen(
+            [sys.executable, "-c", _SERVER_SCRIPT, str(data_dir / "catalog"), str(self.raw_dir)],
+            stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+        )
+        uri = self._proc.stdout.readline().strip()
+        if not uri.startswith("http"):
+            self._proc.kill()
+            raise SystemExit(f"child tiled server did not start (printed {uri!r})")
+        self.client = from_uri(uri)
+        self.writer = TiledWriter(self.client, batch_size=1,
+                                  backup_directory=str(self.backup_dir))
+
+    def close(self) -> None:
+        self._proc.stdin.close()
+        try:
+            self._proc.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            self._proc.kill()
+            self._proc.wait()
+
+
+class _BatchedStore:
+    """The in-process store of ``EmbeddedStore`` with a second writer of a larger batch."""
+
+    def __init__(self, store, batch_size: int) -> None:
+        from bluesky_tiled_plugins import TiledWriter
+
+        self.raw_dir = store.raw_dir
+        self.client = store.client
+        self.writer = TiledWriter(store.client, batch_size=batch_size,
+                                  backup_directory=str(store.backup_dir))
+
+
+def _variant(cfg: Config, make_store: Callable[[], object], threaded: bool,
+             batch_size: int = 1) -> tuple[PerRecord, PerRecord]:
+    store = make_store()
+    target = store if batch_size == 1 else _BatchedStore(store, batch_size)
+    tw = ThreadedWriter(target.writer) if threaded else None
+    try:
+        plugin = PluginPath(target, SAMPLES, writer=tw)
+        check_round_trip(plugin)
+        return compare(plugin, cfg.work, cfg.n_records, cfg.repeat)
+    finally:
+        if tw is not None:
+            tw.close()
+        store.close()
+
+
+VARIANT_BATCH = 10
+
+
+def section_variants(cfg: Config, out: dict) -> list[Row]:
+    """Measured models of store-side proposals (nothing in src changes).
+
+    P1 runs the unchanged TiledWriter in one worker thread (documents in order, the
+    run waits for the queue to drain before its time stops). P2 runs the same tiled
+    server in a child process. P3 is TiledWriter(batch_size=10): for comparison
+    only, it gives up the one-record loss window the store promises.
+    """
+    k = [0]
+
+    def in_process():
+        k[0] += 1
+        return open_store(cfg.work / f"store-v{k[0]}")[0]
+
+    def child_process():
+        k[0] += 1
+        return ProcessStore(cfg.work / f"store-v{k[0]}")
+
+    results = {
+        "P1 writer in a worker thread": _variant(cfg, in_process, threaded=True),
+        "P2 tiled server in a child process": _variant(cfg, child_process, threaded=False),
+        "P1+P2": _variant(cfg, child_process, threaded=True),
+        f"P3 batch_size={VARIANT_BATCH} (info)": _variant(
+            cfg, in_process, threaded=False, batch_size=VARIANT_BATCH),
+        f"P1+P2+P3 batch_size={VARIANT_BATCH} (info)": _variant(
+            cfg, child_process, threaded=True, batch_size=VARIANT_BATCH),
+    }
+    rows = []
+    for label, (p, h) in results.items():
+        ratio = p.per_record / h.per_record
+        rows.append(Row(f"{label}: plugin / h5py", f"{ratio:.2f}x", f"<= {GOAL}x",
+                        "PASS" if ratio <= GOAL else "FAIL"))
+        rows.append(Row("  plugin / h5py per record; plugin fixed",
+                        f"{_ms(p.per_record)} / {_ms(h.per_record)}; {_ms(p.fixed)}"))
+    out["variants"] = {k: dict(p=p, h=h, ratio=p.per_record / h.per_record)
+                       for k, (p, h) in results.items()}
+    return rows
+
+
+SECTIONS: dict[str, Callable[[Config, dict], list[Row]]] = {
+    "per_record": section_per_record,
+    "big_record": section_big_record,
+    "where_time_goes": section_where_time_goes,
+    "variants": section_variants,
+}
+
+
+# ------------------------------------------------------------------- reporting
+
+
+def render(rows_by_section: dict[str, list[Row]]) -> str:
+    lines = ["| section | figure | value | goal | result |", "|---|---|---|---|---|"]
+    for sec, rows in rows_by_section.items():
+        for r in rows:
+            lines.append(f"| {sec} | {r.name} | {r.value} | {r.goal} | {r.verdict} |")
+    return "\n".join(lines)
+
+
+def print_table(rows_by_section: dict[str, list[Row]]) -> None:
+    w = max(len(r.name) for rows in rows_by_section.values() for r in rows)
+    for sec, rows in rows_by_section.items():
+        print(f"\n[{sec}]")
+        for r in rows:
+            print(f"  {r.name:<{w}}  {r.value:>22}  {r.goal:>14}  {r.verdict}")
+
+
+def write_results(path: Path, cfg: Config, rows_by_section, out: dict, elapsed: float) -> None:
+    import bluesky
+    import h5py
+    import tiled
+
+    head = [
+        "# Store benchmark: one detector record through quietwell vs bare h5py",
+        "",
+        f"Written by `bench/store_bench.py{' --quick' if cfg.quick else ''}` "
+        f"({time.strftime('%Y-%m-%d %H:%M')}, {elapsed:.0f} s).",
+        f"Machine: {platform.machine()}, {os.cpu_count()} cores, Python "
+        f"{platform.python_version()}; bluesky {bluesky.__version__}, tiled "
+        f"{tiled.__version__}, h5py {h5py.__version__} (HDF5 {h5py.version.hdf5_version}).",
+        f"Runs of N={cfg.n_records} and 2N records (N={cfg.n_big} at 2^20); minimum of "
+        f"{cfg.repeat} interleaved runs; per record = (T(2N) - T(N)) / N, fixed = "
+        "T(N) - N * per record. Data directory on "
+        f"`{cfg.work}`.",
+        "",
+        render(rows_by_section),
+        "",
+    ]
+    if "breakdown" in out:
+        b = out["breakdown"]
+        head += ["## Writer documents and HTTP requests (one run of "
+                 f"{b['n']} records)", "",
+                 "| document | count | time |", "|---|---|---|"]
+        for name, t in b["writer"].items():
+            head.append(f"| {name} | {b['counts'][name]} | {_ms(t)} |")
+        head += ["", "HTTP requests by method: "
+                 + ", ".join(f"{k} {v}" for k, v in sorted(b["http"].items())), ""]
+    if "profile_text" in out:
+        head += ["## cProfile of one plugin run (RunEngine thread, cumulative; "
+                 "the tiled server thread is not in it)", "",
+                 "```", out["profile_text"].strip(), "```", ""]
+    path.write_text("\n".join(head))
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--quick", action="store_true", help="fewer and shorter runs")
+    ap.add_argument("--only", choices=list(SECTIONS), action="append",
+                    help="run only this section (repeatable)")
+    ap.add_argument("--repeat", type=int, default=None, help="interleaved runs per timing")
+    ap.add_argument("--src", type=Path, default=ROOT / "src",
+                    help="the quietwell source tree to import (default: this checkout)")
+    ap.add_argument("--results", type=Path, default=HERE / "RESULTS-store.md",
+                    help="where to write the figures")
+    ap.add_argument("--workdir", type=Path, default=None,
+                    help="data directory parent (default: a fresh temporary directory)")
+    args = ap.parse_args(argv)
+    if not (args.src / "quietwell").is_dir():
+        print(f"error: --src {args.src} holds no quietwell package", file=sys.stderr)
+        return 2
+    sys.path.insert(0, str(args.src.resolve()))
+    work = Path(tempfile.mkdtemp(prefix="qw-store-bench-", dir=args.workdir))
+    cfg = Config(
+        quick=args.quick,
+        repeat=args.repeat or (2 if args.quick else 3),
+        n_records=10 if args.quick else 20,
+        n_big=4 if args.quick else 8,
+        work=work,
+        src=args.src,
+    )
+    t0 = time.perf_counter()
+    rows: dict[str, list[Row]] = {}
+    out: dict = {}
+    try:
+        for name in args.only or SECTIONS:
+            print(f"running {name} ...", flush=True)
+            rows[name] = SECTIONS[name](cfg, out)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    elapsed = time.perf_counter() - t0
+    print_table(rows)
+    write_results(args.results, cfg, rows, out, elapsed)
+    print(f"\nwritten {args.results} ({elapsed:.0f} s)")
+    main_rows = rows.get("per_record", [])
+    return 0 if all(r.verdict != "FAIL" for r in main_rows) else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,886 @@
+"""Maximum-likelihood fit of damped-oscillator peaks to an averaged PSD.
+
+A bin of a spectrum averaged over K independent periodograms is Gamma
+distributed with shape K and mean S(f).  The fit minimises the Gamma deviance
+``2 K sum[(P - S)/S - ln(P/S)]`` (the negative log-likelihood up to a constant)
+with a trust-region Newton method whose Hessian is the analytic Fisher
+information ``K sum (dS/dtheta_j)(dS/dtheta_k)/S**2``.  A least-squares fit of
+the same data is biased; see Rev. Sci. Instrum. 81, 075103 (2010).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import os
+from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.fft
+import scipy.ndimage
+import scipy.optimize
+import scipy.signal
+import scipy.special
+from numpy.typing import ArrayLike
+
+from quietwell._errors import FitError, InputError, QuietwellError, UnresolvedPeakError
+from quietwell.analysis._welch import PSDResult, _dot
+
+__all__ = [
+    "PeakFit",
+    "GoodnessOfFit",
+    "SpectrumFit",
+    "oscillator_peak",
+    "spectrum_model",
+    "fit_psd",
+    "fit_channels",
+]
+
+_TWO_PI = 2.0 * math.pi
+
+
+def oscillator_peak(f_hz: ArrayLike, f0: float, gamma: float, area: float) -> np.ndarray:
+    """One-sided PSD of a damped harmonic oscillator, normalised to its area.
+
+    ``S(f) = 4 gamma Omega0**2 A / ((Omega0**2 - Omega**2)**2 + gamma**2 Omega**2)``
+    with ``Omega = 2 pi f`` and ``Omega0 = 2 pi f0``; ``integral_0^inf S df = A``.
+
+    Parameters
+    ----------
+    f_hz : array_like
+        Frequencies in Hz.
+    f0 : float
+        Undamped resonance frequency in Hz.
+    gamma : float
+        Energy damping rate in 1/s (full width at half maximum in rad/s).
+    area : float
+        Integral of the peak over f >= 0 in ``units**2`` (the mode variance).
+
+    Returns
+    -------
+    numpy.ndarray
+        PSD in ``units**2/Hz``.
+
+    References
+    ----------
+    The thermal spectrum ``S_xx = (4 gamma k_B T/m)/((Omega0**2 - Omega**2)**2
+    + gamma**2 Omega**2)`` with area ``k_B T/(m Omega0**2)``, rewritten in
+    terms of its area; see PHYSICS.md section 1 and Rev. Sci. Instrum. 89,
+    033111 (2018).
+    """
+    om = _TWO_PI * np.asarray(f_hz, dtype=np.float64)
+    om0 = _TWO_PI * f0
+    return 4.0 * gamma * om0**2 * area / ((om0**2 - om**2) ** 2 + gamma**2 * om**2)
+
+
+@dataclass(frozen=True)
+class PeakFit:
+    """One fitted peak and the flat background of its channel.
+
+    Attributes
+    ----------
+    f0, f0_stderr : float
+        Resonance frequency and its standard error in Hz.
+    gamma, gamma_stderr : float
+        Energy damping rate (FWHM in rad/s) and its standard error in 1/s.
+    area, area_stderr : float
+        Peak area (mode variance) and its standard error in ``units**2``.
+    background, background_stderr : float
+        Flat floor of the channel and its standard error in ``units**2/Hz``
+        (shared by all peaks of the channel).
+    """
+
+    f0: float
+    f0_stderr: float
+    gamma: float
+    gamma_stderr: float
+    area: float
+    area_stderr: float
+    background: float
+    background_stderr: float
+
+    @property
+    def linewidth_hz(self) -> float:
+        """Full width at half maximum in Hz, ``gamma / (2 pi)``."""
+        return self.gamma / _TWO_PI
+
+    @property
+    def height(self) -> float:
+        """Peak value above the floor at ``f0`` in ``units**2/Hz``, ``4 area / gamma``."""
+        return 4.0 * self.area / self.gamma
+
+    def as_dict(self) -> dict[str, float]:
+        """The fit as the JSON object the ``quietwell analyze --json`` command prints."""
+        return {
+            "f0_hz": self.f0,
+            "f0_hz_stderr": self.f0_stderr,
+            "gamma": self.gamma,
+            "gamma_stderr": self.gamma_stderr,
+            "area": self.area,
+            "area_stderr": self.area_stderr,
+            "background": self.background,
+            "background_stderr": self.background_stderr,
+        }
+
+
+@dataclass(frozen=True)
+class GoodnessOfFit:
+    """Deviance of the Gamma likelihood and what it means.
+
+    Attributes
+    ----------
+    deviance : float
+        ``2 K sum[(P - S)/S - ln(P/S)]`` over the fitted bins (dimensionless).
+    dof : int
+        Bins minus free parameters.
+    reduced : float
+        ``deviance / (dof * m_K)``, with ``m_K = 2 K (ln K - digamma(K))`` the
+        mean deviance of one bin (-> 1 for large K); about 1 for a good fit.
+    p_value : float
+        Probability of a deviance at least this large if the model is right
+        (chi-square approximation, widened for correlated bins).
+    """
+
+    deviance: float
+    dof: int
+    reduced: float
+    p_value: float
+
+
+@dataclass(frozen=True)
+class SpectrumFit:
+    """The fit of one channel: its peaks, floor, covariance and goodness.
+
+    Attributes
+    ----------
+    peaks : tuple of PeakFit
+        Fitted peaks in order of increasing ``f0``.
+    background, background_stderr : float
+        Flat floor in ``units**2/Hz``.
+    goodness : GoodnessOfFit
+        Deviance, degrees of freedom, reduced deviance and p-value.
+    n_bins : int
+        Bins in the fitted band.
+    band : tuple of float
+        Lowest and highest fitted bin frequency in Hz.
+    covariance : numpy.ndarray
+        Covariance of ``parameter_names`` (linear parameters, SI units as in
+        :class:`PeakFit`).
+    parameter_names : tuple of str
+        ``("f0_0", "gamma_0", "area_0", ..., "background")``.
+    effective_averages : float
+        Gamma shape K used for the bins.
+    bin_correlation : float
+        Factor by which the parameter variance was widened for correlated bins.
+    n_iterations : int
+        Optimiser iterations.
+    """
+
+    peaks: tuple[PeakFit, ...]
+    background: float
+    background_stderr: float
+    goodness: GoodnessOfFit
+    n_bins: int
+    band: tuple[float, float]
+    covariance: np.ndarray = field(repr=False)
+    parameter_names: tuple[str, ...]
+    effective_averages: float
+    bin_correlation: float
+    n_iterations: int
+
+    def model(self, f_hz: ArrayLike) -> np.ndarray:
+        """Fitted spectrum in ``units**2/Hz`` at frequencies ``f_hz`` (Hz)."""
+        return spectrum_model(f_hz, [(p.f0, p.gamma, p.area) for p in self.peaks], self.background)
+
+
+def spectrum_model(
+    f_hz: ArrayLike, peaks: Sequence[tuple[float, float, float]], background: float
+) -> np.ndarray:
+    """Sum of damped-oscillator peaks plus a flat floor.
+
+    Parameters
+    ----------
+    f_hz : array_like
+        Frequencies in Hz.
+    peaks : sequence of (f0, gamma, area)
+        Each peak's resonance in Hz, damping in 1/s and area in ``units**2``.
+    background : float
+        Flat floor in ``units**2/Hz``.
+
+    Returns
+    -------
+    numpy.ndarray
+        PSD in ``units**2/Hz``.
+    """
+    s = np.full(np.shape(f_hz), float(background))
+    for f0, gamma, area in peaks:
+        s += oscillator_peak(f_hz, f0, gamma, area)
+    return s
+
+
+# --------------------------------------------------------------------------
+# Internal parametrisation.  theta = [u_0, ln g_0, ln a_0, u_1, ..., ln b] with
+# f0_k = f_ref_k + u_k * df, gamma_k = exp(ln g_k), area_k = exp(ln a_k) * scale_a
+# and background = exp(ln b) * scale_b, so every component is of order one.
+# --------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Problem:
+    om: np.ndarray  # angular frequencies of the bins, rad/s
+    p: np.ndarray  # data in units of the initial floor estimate
+    k: float
+    df: float
+    f_ref: np.ndarray
+    scale_a: float  # unit of the internal area: floor * df
+    # Set for a Welch spectrum: the window's normalised autocorrelation
+    # c(tau) = sum_n w[n] w[n + tau] / sum w**2 for tau = 0..N-1, the sample
+    # rate in Hz and the indices of the fitted bins in the rfft grid.
+    lag_window: np.ndarray | None = None
+    sample_rate: float = 0.0
+    bins: np.ndarray | slice | None = None
+    lag_times: np.ndarray | None = None  # tau / fs in s for tau = 0..N-1
+
+    def unpack(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+        q = theta[:-1].reshape(-1, 3)
+        f0 = self.f_ref + q[:, 0] * self.df
+        return f0, np.exp(q[:, 1]), np.exp(q[:, 2]) * self.scale_a, float(np.exp(theta[-1]))
+
+    def model_and_jacobian(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        if self.lag_window is not None:
+            return self._windowed(theta)
+        f0, gamma, area, b = self.unpack(theta)
+        om0 = (_TWO_PI * f0)[:, None]
+        g = gamma[:, None]
+        om2 = self.om**2
+        diff = om0**2 - om2
+        d = diff**2 + g**2 * om2
+        peak = 4.0 * g * om0**2 * area[:, None] / d
+        # d peak / d u: via Omega0, d Omega0 / d u = 2 pi df
+        d_om0 = peak * (2.0 / om0 - 4.0 * om0 * diff / d) * (_TWO_PI * self.df)
+        d_lng = peak * (1.0 - 2.0 * g**2 * om2 / d)
+        jac = np.empty((theta.size, self.om.size))
+        jac[0:-1:3] = d_om0
+        jac[1:-1:3] = d_lng
+        jac[2:-1:3] = peak
+        jac[-1] = b
+        return peak.sum(axis=0) + b, jac
+
+    def _windowed(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Expected Welch bins: the window-weighted autocovariance, Fourier transformed.
+
+        ``E[P_k] = (2/fs) sum_|tau|<N R(tau/fs) c(tau) exp(-2 pi i k tau/N)`` for
+        the sampled process, so leakage of the window and aliasing are exact.
+        The damped oscillator of area A has ``R(t) = A exp(-a t) (cos w1 t +
+        (a/w1) sin w1 t)``, ``a = gamma/2``, ``w1 = sqrt(Omega0**2 - a**2)``.
+        """
+        f0, gamma, area, b = self.unpack(theta)
+        n_peaks = f0.size
+        n = self.lag_window.size
+        n_bins = self.om.size
+        om0 = _TWO_PI * f0
+        a = 0.5 * gamma
+        w1sq = om0**2 - a**2
+        if np.any(w1sq <= 0):
+            return np.full(n_bins, np.nan), np.full((theta.size, n_bins), np.nan)
+        w1 = np.sqrt(w1sq)
+        q = a / w1
+        t = self.lag_times
+        rows = np.empty((3 * n_peaks, n))
+        for j in range(n_peaks):
+            # exp(-a t) cos(w1 t) and exp(-a t) sin(w1 t) from one complex exponential
+            z = np.exp((-a[j] + 1j * w1[j]) * t)
+            c, s = z.real, z.imag
+            tc = t * c
+            amp = area[j]
+            # R and its derivatives by ln gamma (a d/da, a proportional to gamma)
+            # and by u (d Omega0/du = 2 pi df); simplified by hand from
+            # R = A exp(-a t) (cos w1 t + (a/w1) sin w1 t), w1 = sqrt(Omega0**2 - a**2).
+            rows[3 * j + 2] = amp * (c + q[j] * s)
+            rows[3 * j + 1] = (a[j] * amp * (1.0 + q[j] ** 2)) * (s / w1[j] - tc)
+            rows[3 * j] = (amp * om0[j] / w1[j] * _TWO_PI * self.df) * (
+                q[j] * tc - t * s - (q[j] / w1[j]) * s
+            )
+        rows *= self.lag_window
+        # Even in tau: sum over |tau| < N of h(tau) exp(-i k tau) = 2 Re rfft(h)_k - h(0).
+        spec = scipy.fft.rfft(rows, axis=1, workers=1)[:, self.bins].real
+        spec *= 2.0
+        spec -= rows[:, :1]
+        spec *= 2.0 / self.sample_rate
+        jac = np.empty((theta.size, n_bins))
+        jac[:-1] = spec
+        jac[-1] = b
+        return jac[2:-1:3].sum(axis=0) + b, jac
+
+
+def _objective(prob: _Problem):
+    cache: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}
+
+    def get(theta):
+        key = theta.tobytes()
+        if key not in cache:
+            cache.clear()
+            cache[key] = prob.model_and_jacobian(theta)
+        return cache[key]
+
+    def fun(theta):
+        s, _ = get(theta)
+        if not np.all(s > 0) or not np.all(np.isfinite(s)):
+            return np.inf
+        ratio = prob.p / s
+        return float(prob.k * np.sum(ratio - np.log(ratio) - 1.0))
+
+    def jac(theta):
+        s, j = get(theta)
+        # einsum, not BLAS: OpenBLAS threads would spin and compete with the
+        # threads that fit other channels or compute spectra.
+        return prob.k * np.einsum("ij,j->i", j, (s - prob.p) / s**2)
+
+    def hess(theta):
+        s, j = get(theta)
+        js = j / s
+        return prob.k * np.einsum("ik,jk->ij", js, js)
+
+    return fun, jac, hess
+
+
+@dataclass(frozen=True)
+class _Result:
+    x: np.ndarray
+    fun: float
+    success: bool
+    nit: int
+    message: str
+
+
+def _fisher_scoring(fun, jac, hess, theta: np.ndarray, maxiter: int = 100) -> _Result:
+    """Minimise by Fisher scoring with Levenberg-Marquardt damping.
+
+    Each step solves ``(F + lam diag F) step = -grad`` with the Fisher
+    information ``F``; ``lam`` shrinks after a step that lowers the objective
+    and grows tenfold until one does.  Converged when the Newton decrement
+    ``grad F**-1 grad`` (twice the expected further gain of log-likelihood)
+    is below 1e-10.
+    """
+    theta = np.asarray(theta, dtype=np.float64).copy()
+    f = fun(theta)
+    if not math.isfinite(f):
+        return _Result(theta, f, False, 0, "the objective is not finite at the start")
+    lam = 1e-3
+    for it in range(1, maxiter + 1):
+        g = jac(theta)
+        h = hess(theta)
+        try:
+            decrement = float(g @ np.linalg.solve(h, g))
+        except np.linalg.LinAlgError:
+            decrement = math.inf
+        if decrement < 1e-10:
+            return _Result(theta, f, True, it - 1, "converged")
+        d = np.diag(h).copy()
+        d[d <= 0] = 1.0
+        while True:
+            try:
+                step = -np.linalg.solve(h + lam * np.diag(d), g)
+            except np.linalg.LinAlgError:
+                step = None
+            if step is not None:
+                trial = theta + step
+                f_trial = fun(trial)
+                if math.isfinite(f_trial) and f_trial <= f:
+                    break
+            lam *= 10.0
+            if lam > 1e12:
+                return _Result(theta, f, False, it, "no step lowers the objective")
+        gain = f - f_trial
+        theta, f = trial, f_trial
+        if decrement < 1e-5 and lam <= 1e-2:
+            # A nearly undamped Newton step from a decrement this small leaves one
+            # of order decrement**2: converged without evaluating again.
+            return _Result(theta, f, True, it, "converged")
+        lam = max(lam / 10.0, 1e-9)
+        if gain <= 1e-13 * max(1.0, abs(f)) and decrement < 1e-6:
+            return _Result(theta, f, True, it, "converged (rounding level)")
+    return _Result(theta, f, False, maxiter, f"no convergence in {maxiter} iterations")
+
+
+def _as_slice(idx: np.ndarray) -> np.ndarray | slice:
+    """A slice for contiguous indices (cheaper to take), else the indices."""
+    if idx.size and idx[-1] - idx[0] + 1 == idx.size:
+        return slice(int(idx[0]), int(idx[-1]) + 1)
+    return idx
+
+
+_LAG_WINDOWS: dict[tuple[int, int], np.ndarray] = {}
+
+
+def _lag_window(w: np.ndarray) -> np.ndarray:
+    """``c(tau) = sum_n w[n] w[n + tau] / sum w**2`` for tau = 0..N-1 (cached per window)."""
+    key = (w.size, hash(w.tobytes()))
+    lag = _LAG_WINDOWS.get(key)
+    if lag is None:
+        full = scipy.signal.correlate(w, w, mode="full", method="fft")[w.size - 1 :]
+        lag = full / _dot(w, w)
+        lag.setflags(write=False)
+        if len(_LAG_WINDOWS) > 16:
+            _LAG_WINDOWS.clear()
+        _LAG_WINDOWS[key] = lag
+    return lag
+
+
+def _smooth_width(k: float) -> int:
+    """Odd box width in bins that brings the relative noise of the bins to ~1/3."""
+    half = max(1, math.ceil(4.0 / k))
+    return 2 * half + 1
+
+
+def _floor_estimate(p: np.ndarray, k: float) -> float:
+    """Flat floor from the lower quartile of the bins, corrected for Gamma(K) noise."""
+    q = 0.25
+    gamma_q = float(scipy.special.gammaincinv(k, q)) / k  # Gamma(k, 1/k) quantile
+    return float(np.quantile(p, q) / gamma_q)
+
+
+def _initial_peak(
+    f: np.ndarray, smooth: np.ndarray, i: int, floor: float, width: int
+) -> tuple[float, float, float]:
+    """(f0, gamma, area) from the peak position, height and half-maximum width."""
+    df = f[1] - f[0]
+    height = smooth[i] - floor
+    if height <= 0:
+        height = smooth[i]
+    half = floor + 0.5 * height
+    lo = i
+    while lo > 0 and smooth[lo] > half:
+        lo -= 1
+    hi = i
+    while hi < smooth.size - 1 and smooth[hi] > half:
+        hi += 1
+    fwhm_bins = float(hi - lo)
+    fwhm_bins = math.sqrt(max(fwhm_bins**2 - (width - 1) ** 2, 1.0))
+    fwhm_hz = fwhm_bins * df
+    return float(f[i]), _TWO_PI * fwhm_hz, 0.5 * math.pi * height * fwhm_hz
+
+
+def _running_median(x: np.ndarray, width: int) -> np.ndarray:
+    """Median over about ``width`` bins around each bin, from medians of short chunks.
+
+    Medians of chunks of ``width // 16`` bins, a running median of 17 of them,
+    linearly interpolated back to every bin: a cheap stand-in for a full
+    running median that is as insensitive to peaks narrower than ``width / 4``.
+    """
+    chunk = max(1, width // 16)
+    n_chunks = x.size // chunk
+    if n_chunks < 3:
+        return np.full(x.size, float(np.median(x)))
+    med = np.median(x[: n_chunks * chunk].reshape(n_chunks, chunk), axis=1)
+    size = min(17, n_chunks if n_chunks % 2 else n_chunks - 1)
+    med = scipy.ndimage.median_filter(med, size=size, mode="nearest")
+    centres = (np.arange(n_chunks) + 0.5) * chunk
+    return np.interp(np.arange(x.size), centres, med)
+
+
+def _find_peaks(
+    f: np.ndarray, p: np.ndarray, k: float, r: float, floor: float, wanted: int | None
+) -> list[int]:
+    """Indices of peak candidates, most prominent first.
+
+    A candidate is a local maximum of the smoothed spectrum that stands above
+    both the floor and a wide running median of the spectrum (so a slope or the
+    plateau below a resonance is no peak) by ``threshold`` in natural-log units.
+    Without a requested number the threshold allows for the number of bins
+    searched (``sqrt(2 ln N) + 2`` standard deviations, about 6 for 8000 bins).
+    """
+    width = _smooth_width(k)
+    smooth = scipy.ndimage.uniform_filter1d(p, width, mode="nearest")
+    # Relative noise of the smoothed spectrum, in natural-log units.
+    sigma_ln = math.sqrt(r / (k * width))
+    n_sigma = 3.0 if wanted is not None else math.sqrt(2.0 * math.log(p.size)) + 2.0
+    threshold = n_sigma * sigma_ln
+    log_s = np.log(np.maximum(smooth, floor * 1e-12))
+    baseline = np.log(_running_median(smooth, max(101, p.size // 4)))
+    idx, props = scipy.signal.find_peaks(log_s, height=math.log(floor) + threshold, prominence=threshold)
+    keep = log_s[idx] - baseline[idx] >= threshold
+    idx, prominence = idx[keep], props["prominences"][keep]
+    idx = idx[np.argsort(prominence)[::-1]]
+    if wanted is not None:
+        idx = idx[:wanted]
+    return [int(i) for i in idx]
+
+
+@dataclass(frozen=True)
+class _Spectrum:
+    f: np.ndarray
+    p: np.ndarray
+    k: float
+    r: float
+    df: float
+    nyquist: float | None = None
+    window: np.ndarray | None = None
+
+
+def _as_spectrum(spectrum) -> _Spectrum:
+    """The bins and their statistics from a PSDResult or an (f, p, K) tuple."""
+    if isinstance(spectrum, PSDResult):
+        if spectrum.psd.ndim != 1:
+            raise InputError(
+                f"the PSD has {spectrum.psd.shape[0]} channels; fit one at a time with "
+                "fit_psd(result.channel(i))"
+            )
+        return _Spectrum(
+            f=np.asarray(spectrum.frequency, dtype=np.float64),
+            p=np.asarray(spectrum.psd, dtype=np.float64),
+            k=float(spectrum.effective_averages),
+            r=float(spectrum.bin_correlation),
+            df=float(spectrum.resolution_hz),
+            nyquist=spectrum.sample_rate / 2.0,
+            window=spectrum.window_values,
+        )
+    try:
+        f, p, k = spectrum
+    except (TypeError, ValueError):
+        raise InputError(
+            "spectrum must be a PSDResult or a tuple (frequency_hz, psd, n_averages); "
+            f"got {type(spectrum).__name__}"
+        ) from None
+    f = np.asarray(f, dtype=np.float64)
+    p = np.asarray(p, dtype=np.float64)
+    if f.ndim != 1 or p.shape != f.shape:
+        raise InputError(f"frequency shape {f.shape} and psd shape {p.shape} must be equal and 1-D")
+    if f.size < 3:
+        raise InputError(f"spectrum has {f.size} bins; at least 3 are needed")
+    steps = np.diff(f)
+    df = float(steps[0])
+    if not (df > 0 and np.allclose(steps, df, rtol=1e-6, atol=0)):
+        raise InputError("frequency must be evenly spaced and increasing (a Welch grid)")
+    k = float(k)
+    if not (math.isfinite(k) and k >= 1):
+        raise InputError(f"n_averages={k} must be >= 1 (segments averaged in each bin)")
+    return _Spectrum(f=f, p=p, k=k, r=1.0, df=df)
+
+
+def fit_psd(
+    spectrum: PSDResult | tuple[ArrayLike, ArrayLike, float],
+    *,
+    peaks: int | Sequence[float] | None = None,
+    band: tuple[float, float] | None = None,
+    min_linewidth_bins: float = 3.0,
+    min_significance: float = 3.0,
+) -> SpectrumFit:
+    """Fit damped-oscillator peaks on a flat floor by maximum likelihood.
+
+    Model: ``S(f) = sum_k 4 gamma_k Omega_k**2 A_k / ((Omega_k**2 - Omega**2)**2
+    + gamma_k**2 Omega**2) + B`` (see :func:`oscillator_peak`).  The bins are
+    taken as Gamma distributed with shape K and mean ``S(f)``.
+
+    Parameters
+    ----------
+    spectrum : PSDResult or (frequency, psd, n_averages)
+        A 1-D :class:`PSDResult` from :func:`welch_psd` (K is its
+        ``effective_averages`` from Welch's overlap formula and the standard
+        errors are widened by its ``bin_correlation``), or a tuple of bin
+        frequencies in Hz, PSD in ``units**2/Hz`` and the number K of
+        independent averages per bin (bins taken as independent).
+    peaks : int or sequence of float, optional
+        ``None``: every peak found well above the floor and the local level
+        (about 6 sigma, allowing for the number of bins searched);
+        an int ``n``: the ``n`` most prominent peaks (3 sigma threshold);
+        a sequence: initial resonance frequencies in Hz, one per peak.
+    band : (float, float), optional
+        Frequencies in Hz to fit, inclusive.  Default: all bins above 0 Hz
+        (for a PSDResult, from the third bin, where per-segment detrending no
+        longer distorts the spectrum, to below the Nyquist frequency).
+    min_linewidth_bins : float, optional
+        Smallest allowed ``gamma/(2 pi)`` in bins.
+    min_significance : float, optional
+        Smallest allowed ``area / area_stderr``.
+
+    Returns
+    -------
+    SpectrumFit
+        Peaks (increasing ``f0``) with standard errors from the inverse Fisher
+        information, the floor, covariance and goodness of fit.
+
+    Raises
+    ------
+    InputError
+        Bad spectrum, band or peak list.
+    UnresolvedPeakError
+        No peak found; a linewidth below ``min_linewidth_bins`` bins (use longer
+        segments); or a peak not significant over the floor (use a longer record
+        or more averages).
+    FitError
+        The optimiser did not converge or a peak is wider than the band.
+
+    References
+    ----------
+    Gamma (chi-square with 2K degrees of freedom) statistics of averaged
+    periodograms and the bias of least-squares fits: Rev. Sci. Instrum. 81,
+    075103 (2010).  Equivalent degrees of freedom of overlapping segments:
+    IEEE Trans. Audio Electroacoust. 15, 70 (1967).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> f = np.arange(1, 2001) * 10.0                   # Hz
+    >>> s = oscillator_peak(f, 10e3, 2 * np.pi * 300, 1e-6) + 1e-12
+    >>> rng = np.random.default_rng(0)
+    >>> p = rng.gamma(50, s / 50)                       # K = 50 averages
+    >>> fit = fit_psd((f, p, 50), peaks=1)
+    >>> pk = fit.peaks[0]
+    >>> bool(abs(pk.f0 - 10e3) < 5 * pk.f0_stderr)
+    True
+    """
+    spec = _as_spectrum(spectrum)
+    f_all, p_all, k, r, df, nyquist = spec.f, spec.p, spec.k, spec.r, spec.df, spec.nyquist
+    if band is None:
+        mask = f_all > 0
+        if nyquist is not None:
+            mask &= (f_all >= 2 * df) & (f_all < nyquist)
+    else:
+        try:
+            fmin, fmax = (float(v) for v in band)
+        except (TypeError, ValueError):
+            raise InputError(f"{band=} must be two frequencies (fmin, fmax) in Hz") from None
+        if not fmin < fmax:
+            raise InputError(f"{band=} must have fmin < fmax (Hz)")
+        mask = (f_all >= fmin) & (f_all <= fmax) & (f_all > 0)
+    f = f_all[mask]
+    p = p_all[mask]
+    if f.size < 10:
+        raise InputError(
+            f"the band {band=} holds {f.size} bins; at least 10 are needed: widen the band "
+            "or use longer segments"
+        )
+    if not np.all(np.isfinite(p)):
+        raise InputError("the PSD has non-finite values in the band; check the record")
+    if not np.all(p > 0):
+        raise InputError("the PSD has bins <= 0 in the band; a fit needs a positive floor (noise)")
+
+    floor = _floor_estimate(p, k)
+    width = _smooth_width(k)
+    smooth = scipy.ndimage.uniform_filter1d(p, width, mode="nearest")
+    if peaks is None or isinstance(peaks, (int, np.integer)):
+        wanted = None if peaks is None else int(peaks)
+        if wanted is not None and wanted < 1:
+            raise InputError(f"peaks={wanted} must be >= 1 (number of peaks to fit)")
+        idx = _find_peaks(f, p, k, r, floor, wanted)
+        if not idx or (wanted is not None and len(idx) < wanted):
+            raise UnresolvedPeakError(
+                f"found {len(idx)} peak(s) above the floor ({floor:.3g} units**2/Hz) in "
+                f"{f[0]:.6g}..{f[-1]:.6g} Hz, "
+                + (f"asked for {wanted}; " if wanted is not None else "")
+                + "use a longer record (more averages), a narrower band or give the "
+                "peak frequencies"
+            )
+        guesses = [_initial_peak(f, smooth, i, floor, width) for i in sorted(idx)]
+    else:
+        guesses = []
+        for f0 in peaks:
+            f0 = float(f0)
+            if not f[0] < f0 < f[-1]:
+                raise InputError(
+                    f"initial peak frequency {f0=} Hz is outside the fitted band {f[0]:.6g}..{f[-1]:.6g} Hz"
+                )
+            i = int(np.argmin(np.abs(f - f0)))
+            lo, hi = max(0, i - width), min(f.size, i + width + 1)
+            i = lo + int(np.argmax(smooth[lo:hi]))
+            guesses.append(_initial_peak(f, smooth, i, floor, width))
+        if not guesses:
+            raise InputError("peaks is an empty list; give at least one frequency in Hz")
+        guesses.sort()
+
+    n_peaks = len(guesses)
+    prob = _Problem(
+        om=_TWO_PI * f,
+        p=p / floor,
+        k=k,
+        df=df,
+        f_ref=np.array([g[0] for g in guesses]),
+        scale_a=df,
+    )
+    if spec.window is not None:
+        prob = dataclasses.replace(
+            prob,
+            lag_window=_lag_window(spec.window),
+            sample_rate=2.0 * nyquist,
+            bins=_as_slice(np.flatnonzero(mask)),
+            lag_times=np.arange(spec.window.size) / (2.0 * nyquist),
+        )
+    theta0 = np.empty(3 * n_peaks + 1)
+    for j, (_, gamma0, area0) in enumerate(guesses):
+        theta0[3 * j : 3 * j + 3] = (0.0, math.log(gamma0), math.log(area0 / floor / df))
+    theta0[-1] = 0.0
+    # Plain model first (cheap); for a Welch spectrum the window-exact model
+    # then only polishes, in a few iterations, from that optimum.
+    stages = [dataclasses.replace(prob, lag_window=None)] if prob.lag_window is not None else []
+    stages.append(prob)
+    theta_start = theta0
+    for stage in stages:
+        fun, jac, hess = _objective(stage)
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            res = _fisher_scoring(fun, jac, hess, theta_start)
+        theta_start = res.x
+    theta = res.x
+    f0, gamma, area_n, b_n = prob.unpack(theta)
+    area = area_n * floor
+    background = b_n * floor
+
+    # Too narrow to be resolved: checked before convergence, since a
+    # line of one or two bins drives the width towards zero.
+    for j in range(n_peaks):
+        if gamma[j] / _TWO_PI < min_linewidth_bins * df:
+            # A narrow line or a noise spike the fit collapsed onto: tell them
+            # apart by the excess power in the five bins around f0.
+            i = int(np.argmin(np.abs(f - f0[j])))
+            near = slice(max(0, i - 2), i + 3)
+            n_near = p[near].size
+            excess = float(np.sum(p[near]) - n_near * background)
+            noise = float(background) * math.sqrt(n_near * r / k)
+            if excess < min_significance * noise:
+                raise UnresolvedPeakError(
+                    f"peak near f0={f0[j]:.6g} Hz is not significant over the floor "
+                    f"(excess {excess / noise:.2g} standard deviations of the floor "
+                    f"{background:.3g} units**2/Hz, below {min_significance:g}); use a longer "
+                    "record (more averages)"
+                )
+            raise UnresolvedPeakError(
+                f"peak near f0={f0[j]:.6g} Hz has linewidth gamma/2pi={gamma[j] / _TWO_PI:.3g} "
+                f"Hz, below {min_linewidth_bins:g} bins ({min_linewidth_bins * df:.3g} Hz at "
+                f"{df:.3g} Hz per bin); use longer segments (larger nperseg)"
+            )
+    # Converged when the Newton step would lower the negative log-likelihood by
+    # far less than one unit, whatever the optimiser's own verdict.
+    grad = jac(theta)
+    with np.errstate(all="ignore"):
+        try:
+            decrement = float(grad @ np.linalg.solve(hess(theta), grad))
+        except np.linalg.LinAlgError:
+            decrement = math.inf
+    if not (res.success or decrement < 1e-6) or not np.all(np.isfinite(theta)):
+        raise FitError(
+            f"the likelihood fit of {n_peaks} peak(s) in {f[0]:.6g}..{f[-1]:.6g} Hz did not "
+            f"converge ({res.message}); give initial peak frequencies or narrow the band"
+        )
+    span = f[-1] - f[0]
+    for j in range(n_peaks):
+        if gamma[j] / _TWO_PI > span or not f[0] <= f0[j] <= f[-1]:
+            raise FitError(
+                f"fitted peak {j} (f0={f0[j]:.6g} Hz, gamma/2pi={gamma[j] / _TWO_PI:.3g} Hz) "
+                f"is not inside the band {f[0]:.6g}..{f[-1]:.6g} Hz; widen the band or give "
+                "initial peak frequencies"
+            )
+
+    fisher = hess(theta)
+    try:
+        cov_t = np.linalg.inv(fisher) * r
+    except np.linalg.LinAlgError:
+        raise FitError(
+            f"the Fisher information of the fit in {f[0]:.6g}..{f[-1]:.6g} Hz is singular; "
+            "peaks overlap too much to separate: fit fewer peaks"
+        ) from None
+    if not np.all(np.isfinite(cov_t)) or np.any(np.diag(cov_t) <= 0):
+        raise FitError("the covariance of the fit is not positive definite; fit fewer peaks")
+    # d(linear)/d(theta): f0 = f_ref + u df, gamma = e^lng, area = e^lna * df * floor, b = e^lnb * floor
+    scale = np.empty(theta.size)
+    scale[0:-1:3] = df
+    scale[1:-1:3] = gamma
+    scale[2:-1:3] = area
+    scale[-1] = background
+    cov = cov_t * np.outer(scale, scale)
+    err = np.sqrt(np.diag(cov))
+
+    fits = []
+    for j in range(n_peaks):
+        fits.append(
+            PeakFit(
+                f0=float(f0[j]),
+                f0_stderr=float(err[3 * j]),
+                gamma=float(gamma[j]),
+                gamma_stderr=float(err[3 * j + 1]),
+                area=float(area[j]),
+                area_stderr=float(err[3 * j + 2]),
+                background=float(background),
+                background_stderr=float(err[-1]),
+            )
+        )
+        if area[j] < min_significance * err[3 * j + 2]:
+            raise UnresolvedPeakError(
+                f"peak near f0={f0[j]:.6g} Hz is not significant over the floor: "
+                f"area={area[j]:.3g} +- {err[3 * j + 2]:.3g} units**2, below "
+                f"{min_significance:g} standard errors; use a longer record (more averages)"
+            )
+
+    deviance = 2.0 * float(res.fun)
+    dof = int(f.size - theta.size)
+    mean_dev = 2.0 * k * (math.log(k) - float(scipy.special.digamma(k)))
+    # Satterthwaite: correlated bins make the deviance a chi-square of dof / r
+    # degrees of freedom scaled by r, with the same mean.
+    c = mean_dev * r
+    p_value = float(scipy.special.chdtrc(dof / r, deviance / c))  # chi-square survival
+    goodness = GoodnessOfFit(deviance=deviance, dof=dof, reduced=deviance / (dof * mean_dev), p_value=p_value)
+    names = []
+    for j in range(n_peaks):
+        names += [f"f0_{j}", f"gamma_{j}", f"area_{j}"]
+    names.append("background")
+    order = np.argsort(f0, kind="stable")
+    perm = np.concatenate([np.arange(3 * j, 3 * j + 3) for j in order] + [[theta.size - 1]])
+    return SpectrumFit(
+        peaks=tuple(fits[j] for j in order),
+        background=float(background),
+        background_stderr=float(err[-1]),
+        goodness=goodness,
+        n_bins=int(f.size),
+        band=(float(f[0]), float(f[-1])),
+        covariance=cov[np.ix_(perm, perm)],
+        parameter_names=tuple(names),
+        effective_averages=k,
+        bin_correlation=r,
+        n_iterations=int(res.nit),
+    )
+
+
+def fit_channels(
+    psd: PSDResult,
+    *,
+    peaks: int | Sequence[float] | None = None,
+    band: tuple[float, float] | None = None,
+    workers: int | None = None,
+    **options,
+) -> tuple[SpectrumFit, ...]:
+    """Fit every channel of a Welch PSD with :func:`fit_psd`, channels in parallel.
+
+    Parameters
+    ----------
+    psd : PSDResult
+        1-D or 2-D result of :func:`welch_psd` (PSD in ``units**2/Hz``).
+    peaks, band, **options
+        As for :func:`fit_psd`, the same for every channel.
+    workers : int, optional
+        Threads fitting channels at the same time; default: all cores.
+
+    Returns
+    -------
+    tuple of SpectrumFit
+        One fit per channel, in channel order.
+
+    Raises
+    ------
+    InputError, UnresolvedPeakError, FitError
+        As :func:`fit_psd`, for the first failing channel; the message starts
+        with ``channel <i>:``.
+    """
+    n = psd.n_channels
+    workers = min(n, workers or os.cpu_count() or 1)
+
+    def one(i: int) -> SpectrumFit:
+        try:
+            return fit_psd(psd.channel(i), peaks=peaks, band=band, **options)
+        except QuietwellError as exc:
+            raise type(exc)(f"channel {i}: {exc}") from None
+
+    if workers <= 1:
+        return tuple(one(i) for i in range(n))
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        return tuple(pool.map(one, range(n)))
