@@ -315,6 +315,9 @@ class _Problem:
         return jac[2:-1:3].sum(axis=0) + b, jac
 
 
+_LN_FLOOR_WIDTH = 10.0
+
+
 def _objective(prob: _Problem):
     cache: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}
 
@@ -325,23 +328,35 @@ def _objective(prob: _Problem):
             cache[key] = prob.model_and_jacobian(theta)
         return cache[key]
 
+    # A weak Gaussian prior on ln(background) (centred on the initial floor estimate,
+    # which is 1 in the internal units, width _LN_FLOOR_WIDTH) keeps the problem
+    # regular when a broad peak hides the floor everywhere in the band: the
+    # likelihood is then flat as the floor goes to 0 and ln B would run off. Where
+    # the data see the floor, the prior's pull is negligible (its curvature is
+    # 1/_LN_FLOOR_WIDTH**2 against the data's K * n_bins).
+    w2 = 1.0 / _LN_FLOOR_WIDTH**2
+
     def fun(theta):
         s, _ = get(theta)
         if not np.all(s > 0) or not np.all(np.isfinite(s)):
             return np.inf
         ratio = prob.p / s
-        return float(prob.k * np.sum(ratio - np.log(ratio) - 1.0))
+        return float(prob.k * np.sum(ratio - np.log(ratio) - 1.0) + 0.5 * w2 * theta[-1] ** 2)
 
     def jac(theta):
         s, j = get(theta)
         # einsum, not BLAS: OpenBLAS threads would spin and compete with the
         # threads that fit other channels or compute spectra.
-        return prob.k * np.einsum("ij,j->i", j, (s - prob.p) / s**2)
+        g = prob.k * np.einsum("ij,j->i", j, (s - prob.p) / s**2)
+        g[-1] += w2 * theta[-1]
+        return g
 
     def hess(theta):
         s, j = get(theta)
         js = j / s
-        return prob.k * np.einsum("ik,jk->ij", js, js)
+        h = prob.k * np.einsum("ik,jk->ij", js, js)
+        h[-1, -1] += w2
+        return h
 
     return fun, jac, hess
 
@@ -376,7 +391,7 @@ def _fisher_scoring(fun, jac, hess, theta: np.ndarray, maxiter: int = 100) -> _R
             decrement = float(g @ np.linalg.solve(h, g))
         except np.linalg.LinAlgError:
             decrement = math.inf
-        if decrement < 1e-10:
+        if decrement < 1e-6:
             return _Result(theta, f, True, it - 1, "converged")
         d = np.diag(h).copy()
         d[d <= 0] = 1.0

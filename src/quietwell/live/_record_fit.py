@@ -91,7 +91,7 @@ class ModeAnalyzer:
     calibration: Sequence[float] | None = None
     calibration_stderr: Sequence[float] | None = None
     mass: float | None = None
-    band_fraction: float = 0.12
+    band_fraction: float = 0.4
     envelope_window: int | None = None
     record_length: int | None = None
     prefix: str = "trace_"
@@ -151,7 +151,13 @@ class ModeAnalyzer:
         lo, hi = f_own * (1 - self.band_fraction), f_own * (1 + self.band_fraction)
         guesses = sorted(f for f in self.mode_frequencies if lo < f < hi)
         psd = welch_psd(trace, fs, nperseg=self.nperseg, noverlap=self.nperseg // 2)
-        fit = fit_psd(psd, peaks=guesses, band=(lo, hi))
+        try:
+            fit = fit_psd(psd, peaks=guesses, band=(lo, hi))
+        except QuietwellError:
+            if len(guesses) == 1:
+                raise
+            # a crosstalk peak too weak to fit must not cost the channel its own mode
+            fit = fit_psd(psd, peaks=[f_own], band=(lo, hi))
         peak = min(fit.peaks, key=lambda p: abs(p.f0 - f_own))
         res = {
             f"f0_{axis}": peak.f0,

@@ -143,6 +143,11 @@ def charge_calibration(
     drive_amplitude : float
         V on the electrodes (checked against the setup's voltage limit).
 
+    The drive tone is taken to be phase-locked to the setup clock (its phase is
+    ``Omega_d t`` at setup time ``t``, as when the drive generator and the digitiser
+    share a time base), so the phasors of all records share one reference and a sign
+    change of the charge shows as a phase flip by pi.
+
     Summary: ``charge`` (elementary charges, integer, at the first step), ``mass`` (kg,
     from the drive referenced to the thermal area, no density assumed), the response
     per charge and the field per volt used. Run name: ``charge_calibration``.
@@ -191,7 +196,7 @@ def charge_calibration(
                 for _ in range(records_per_step):
                     yield from rec.record()
                 yield from rec.flush()
-                per_step.append((cumulative, rec.fits[-records_per_step:]))
+                per_step.append((cumulative, rec.pairs()[-records_per_step:]))
         finally:
             yield from bps.mv(el.drive_enabled, False)
         values.update(_summarize_charge(per_step, rec.fits, field, drive_frequency,
@@ -203,7 +208,12 @@ def charge_calibration(
 
 
 def _summarize_charge(per_step, all_fits, field, f_drive, temperature) -> dict:
-    phasors = [[complex(f["drive_re_x"], f["drive_im_x"]) for f in fits] for _, fits in per_step]
+    # the drive is phase-locked to the setup clock (phase Omega_d t at setup time t), so
+    # a record starting at t_s sees the phasor turned by Omega_d t_s: turn it back
+    wd = 2 * math.pi * f_drive
+    phasors = [[complex(f["drive_re_x"], f["drive_im_x"])
+                * cmath.exp(-1j * math.fmod(wd * p["record_start_time"], 2 * math.pi))
+                for p, f in pairs] for _, pairs in per_step]
     ref = max((z for zs in phasors for z in zs), key=abs)
     phase = cmath.phase(ref)
     amps, errs, ks = [], [], []
