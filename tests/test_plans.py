@@ -37,7 +37,7 @@ RATE = 1e6
 def bench(tmp_path_factory):
     data = tmp_path_factory.mktemp("store")
     with EmbeddedStore(data) as store:
-        RE = RunEngine({}, context_managers=[])
+        RE = RunEngine({})  # with its Ctrl-C handler
         RE.subscribe(store.writer)
         app = build_apparatus(load_setup(find_profile("amber")), store.raw_dir)
         connect_apparatus(app)
@@ -157,19 +157,25 @@ def test_reheating_rates_match_gas_plus_recoil(bench):
         rate, err = s[f"heating_rate_{a}"], s[f"heating_rate_{a}_stderr"]
         assert err < 0.1 * rate
         assert abs(rate - expected) < 3 * err, (a, rate, expected, err)
-        assert abs(s[f"predicted_heating_rate_{a}"] - expected) < 0.05 * expected
+        # the prediction uses the gauge reading (stated accuracy) for the gas part
+        acc = max(g.accuracy for g in app.setup.vacuum.gauges if g.kind == "ionization")
+        allowed = 3 * acc * float(t.gas_heating[i]) + 0.02 * expected
+        assert abs(s[f"predicted_heating_rate_{a}"] - expected) < allowed
     env = store.client[uid]["fits"].read()
     assert np.asarray(env["envelope_x"]).shape[0] == 120
 
 
-@pytest.mark.parametrize("gain", [1.2e5, 2e4, 4e3])
-def test_sideband_occupation(bench, gain):
+@pytest.mark.parametrize("gain", [2.7e4, 8e3, 3e3])
+def test_sideband_occupation_without_calibration(bench, gain):
+    # Phys. Rev. Lett. 124, 013603 (2020): n = R/(1 - R); the gains put the x mode
+    # between n ~ 0.5 and n ~ 10 at 1e-8 mbar.
     RE, store, app, lab = bench
     _go(RE, app, 1e-8 * MBAR, gain=gain)
-    (uid,) = RE(sideband_thermometry([app.heterodyne], 6, apparatus=app, axis="z",
+    (uid,) = RE(sideband_thermometry([app.heterodyne], 8, apparatus=app, axis="x",
                                      feedback_gain=gain))
     s = _summary(store, uid)
-    n_true = float(lab.truth().occupation[2])
+    n_true = float(lab.truth().occupation[0])
+    assert 0.4 < n_true < 12
     assert abs(s["occupation"] - n_true) < 3 * s["occupation_stderr"], (s, n_true)
 
 

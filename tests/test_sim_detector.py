@@ -88,7 +88,8 @@ def test_heterodyne_sideband_ratio_is_n_over_n_plus_1(lo_sign):
     v, clipped = het.record(1 << 22, fs, 0.0, n_occ, freqs, width)
     assert clipped == 0
     st, ast = het.sideband_frequencies(freqs)
-    assert (ast[0] > hp.carrier_frequency) == (lo_sign == 1)
+    # local oscillator above the signal (+1): the Stokes sideband beats above the carrier
+    assert (ast[0] > hp.carrier_frequency) == (lo_sign == -1)
     a_s, a_as = _sideband_areas(v, fs, st[0], ast[0], 500.0, (1.3e6, 1.5e6))
     ratio = a_as / a_s
     assert abs(ratio - n_occ[0] / (n_occ[0] + 1)) < 0.03

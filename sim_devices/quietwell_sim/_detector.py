@@ -215,7 +215,10 @@ class HeterodyneParams:
     carrier_frequency : float
         Carrier (local-oscillator offset) frequency in Hz (default 1.5 MHz).
     lo_sign : int
-        +1: anti-Stokes (n) above the carrier, Stokes (n + 1) below; -1: the reverse.
+        Sign of the local-oscillator offset, as the device records it: +1 when the
+        local oscillator lies above the signal light, so that the Stokes sideband
+        (n + 1, scattered light at omega_L - Omega) beats above the carrier and the
+        anti-Stokes sideband (n) below; -1: the reverse.
     sideband_gain : tuple of float
         Sideband area per quantum (x, y, z) in V**2 (default 1e-10).
     carrier_amplitude : float
@@ -266,7 +269,7 @@ class HeterodyneDetector:
         """Stokes and anti-Stokes frequencies in Hz for trap ``frequencies`` (Hz)."""
         s = self.params.lo_sign
         fc = self.params.carrier_frequency
-        return fc - s * np.asarray(frequencies), fc + s * np.asarray(frequencies)
+        return fc + s * np.asarray(frequencies), fc - s * np.asarray(frequencies)
 
     def _line(self, n: int, dt: float, area: float, width: float, f: float, t0: float):
         """Real narrow-band Gaussian process of variance ``area`` (V**2) at ``f`` (Hz)."""

@@ -212,16 +212,19 @@ class ModeAnalyzer:
 class SidebandAnalyzer:
     """Occupation of one mode from the heterodyne sidebands of a beat record.
 
-    The Stokes sideband (weight n + 1) lies at ``carrier - lo_sign * f_mode``... see
-    :class:`quietwell.devices.HeterodyneDetector` for the sign convention; the ratio
-    ``R = A_antiStokes/A_Stokes`` gives ``n = R/(1 - R)``.
+    With the local oscillator above the signal light (``lo_sign = +1``) the Stokes
+    sideband (weight n + 1) beats at ``carrier + f_mode`` and the anti-Stokes one
+    (weight n) at ``carrier - f_mode``; ``lo_sign = -1`` swaps them. Each sideband is
+    fitted in a band of ``band_fraction * f_mode`` with every sideband of the other
+    modes inside it fitted too; ``R = A_antiStokes/A_Stokes`` gives ``n = R/(1 - R)``.
     """
 
     carrier: float
     lo_sign: int
-    mode_frequency: float
+    mode_frequencies: Sequence[float]
     nperseg: int
     axis: str = "z"
+    band_fraction: float = 0.3
     trace_key: str = "het_trace_beat"
     rate_key: str = "het_sample_rate"
 
@@ -237,6 +240,19 @@ class SidebandAnalyzer:
         out[f"sideband_status_{a}"] = _key("", "string", "")
         return out
 
+    def _area(self, psd, fc: float, f_mode: float) -> tuple[float, float]:
+        lo, hi = fc - self.band_fraction * f_mode, fc + self.band_fraction * f_mode
+        lines = sorted({self.carrier + s * f for f in self.mode_frequencies for s in (1, -1)
+                        if lo < self.carrier + s * f < hi})
+        try:
+            fit = fit_psd(psd, peaks=lines, band=(lo, hi))
+        except QuietwellError:
+            if len(lines) == 1:
+                raise
+            fit = fit_psd(psd, peaks=[fc], band=(lo, hi))
+        pk = min(fit.peaks, key=lambda p: abs(p.f0 - fc))
+        return pk.area, pk.area_stderr
+
     def analyze(self, traces: Mapping[str, np.ndarray], data: Mapping) -> dict:
         a = self.axis
         out: dict = {k: math.nan for k in self.describe() if "status" not in k}
@@ -245,33 +261,20 @@ class SidebandAnalyzer:
             if trace is None:
                 raise InputError(f"the record has no {self.trace_key} trace")
             fs = float(data.get(self.rate_key, data.get("sample_rate", math.nan)))
-            psd = welch_psd(
-                np.asarray(trace), fs, nperseg=self.nperseg, noverlap=self.nperseg // 2
-            )
-            areas = {}
-            for side in (+1, -1):
-                fc = self.carrier + side * self.mode_frequency
-                band = (fc - 0.1 * self.mode_frequency, fc + 0.1 * self.mode_frequency)
-                pk = fit_psd(psd, peaks=[fc], band=band).peaks[0]
-                areas[side] = (pk.area, pk.area_stderr)
+            psd = welch_psd(np.asarray(trace), fs, nperseg=self.nperseg, noverlap=self.nperseg // 2)
+            f_mode = float(self.mode_frequencies[AXES.index(a)])
             s = self.stokes_side()
-            (a_s, e_s), (a_as, e_as) = areas[s], areas[-s]
+            a_s, e_s = self._area(psd, self.carrier + s * f_mode, f_mode)
+            a_as, e_as = self._area(psd, self.carrier - s * f_mode, f_mode)
             ratio = a_as / a_s
             r_err = ratio * math.hypot(e_as / a_as, e_s / a_s)
             n = sideband_occupation(ratio, r_err)
-            out.update(
-                {
-                    f"stokes_area_{a}": a_s,
-                    f"stokes_area_{a}_stderr": e_s,
-                    f"antistokes_area_{a}": a_as,
-                    f"antistokes_area_{a}_stderr": e_as,
-                    f"sideband_ratio_{a}": ratio,
-                    f"sideband_ratio_{a}_stderr": r_err,
-                    f"sideband_occupation_{a}": n.value,
-                    f"sideband_occupation_{a}_stderr": n.stderr,
-                    f"sideband_status_{a}": "ok",
-                }
-            )
+            out.update({f"stokes_area_{a}": a_s, f"stokes_area_{a}_stderr": e_s,
+                        f"antistokes_area_{a}": a_as, f"antistokes_area_{a}_stderr": e_as,
+                        f"sideband_ratio_{a}": ratio, f"sideband_ratio_{a}_stderr": r_err,
+                        f"sideband_occupation_{a}": n.value,
+                        f"sideband_occupation_{a}_stderr": n.stderr,
+                        f"sideband_status_{a}": "ok"})
         except _FAILURES as exc:
             out[f"sideband_status_{a}"] = _status(exc)
         return out

@@ -60,9 +60,8 @@ def sideband_thermometry(
     setup = app.setup
     het = app.heterodyne
     fs, n = yield from configure_detector(app, het, None, None)
-    i = AXES.index(axis)
     parts = [SidebandAnalyzer(setup.detector.heterodyne_carrier, setup.detector.lo_sign,
-                              setup.trap.frequencies[i], nperseg=max(1024, n // 8), axis=axis)]
+                              setup.trap.frequencies, nperseg=max(1024, n // 8), axis=axis)]
     if app.detector in detectors:
         _, n_m = yield from configure_detector(app, app.detector, None, None)
         parts.append(ModeAnalyzer(setup.trap.frequencies, nperseg=max(1024, n_m // 8)))
