@@ -57,7 +57,7 @@ PRESSURE_POLL_S = 60.0
 #: Largest number of discharge steps in one request (the setup has no such limit).
 DISCHARGE_STEPS_MAX = 100
 #: Digitiser full-scale ranges (+-V) offered besides the setup's ``adc_range``.
-INPUT_RANGES_V = (0.2, 0.5, 1.0, 2.0, 5.0, 10.0)
+INPUT_RANGES_V = (0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0, 2.0, 5.0, 10.0)
 
 
 def _display_digits(accuracy: float) -> int:

@@ -288,6 +288,58 @@ def _table(trace, psd, channels, units: str) -> str:
     return "\n".join(lines)
 
 
+# --------------------------------------------------------------------------
+# demo, recover
+
+
+@subcommand("demo", help="run a whole characterisation on the simulated laboratory")
+def _demo_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--data-dir", required=True, metavar="DIR",
+                        help="data directory of the embedded store (created if missing)")
+    parser.add_argument("--setup", default="amber", metavar="PROFILE",
+                        help="setup profile name or folder (default: amber)")
+    parser.add_argument("--quick", action="store_true",
+                        help="a reduced run (fewer reheating cycles and steps)")
+
+
+@_demo_arguments.runner
+def _demo(args: argparse.Namespace) -> int:
+    import dataclasses
+
+    from quietwell.demo import DemoConfig, format_report, run_demo
+
+    cfg = DemoConfig.quick() if args.quick else DemoConfig()
+    cfg = dataclasses.replace(cfg, profile=args.setup)
+    result = run_demo(args.data_dir, cfg)
+    print()
+    print(format_report(result))
+    print(f"\nstored in {result.data_dir}; read it back with "
+          f"quietwell.open_catalog({str(result.data_dir)!r})")
+    return EXIT_OK
+
+
+@subcommand("recover", help="rebuild runs whose process died from the store's journal")
+def _recover_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--data-dir", required=True, metavar="DIR",
+                        help="data directory of the embedded store")
+
+
+@_recover_arguments.runner
+def _recover(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from quietwell import InputError
+    from quietwell.store import EmbeddedStore
+
+    if not (Path(args.data_dir) / "catalog" / "catalog.db").exists():
+        raise InputError(f"--data-dir {args.data_dir} is not a quietwell data directory (no "
+                         "catalog/catalog.db); give the directory a run wrote to")
+    with EmbeddedStore(args.data_dir) as store:
+        uids = store.recover()
+    print(f"recovered {len(uids)} run(s)" + (": " + ", ".join(uids) if uids else ""))
+    return EXIT_OK
+
+
 if __name__ == "__main__":
     # Run the registry of the imported module, where other modules register too.
     from quietwell.cli import main as _main

@@ -131,19 +131,22 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         charge = run("charge_calibration", charge_calibration(
             det, [0, -1, -1, -1, -1], pressure=3 * MBAR,
             drive_frequency=0.85 * setup.trap.frequencies[0], drive_amplitude=5.0,
-            records_per_step=3, record_length=cfg.short_record, **common))
+            records_per_step=3, record_length=cfg.short_record, input_range=2.0, **common))
         m_charge = Estimate(charge["mass"], charge["mass_stderr"])
+        charge_truth = store.client[result.uids["charge_calibration"]].metadata["start"][
+            "sim_truth"]["charge_e"]
         thermal = run("thermal_calibration", thermal_calibration(
             det, 3 * MBAR, records=4, mass=m_charge, record_length=cfg.record_length,
-            **common))
+            input_range=2.0, **common))
         cal = [Estimate(thermal[f"calibration_{a}"], thermal[f"calibration_{a}_stderr"])
                for a in AXES]
         run("pressure_sweep", pressure_sweep(
             det, [p * MBAR for p in cfg.sweep_pressures_mbar], records_per_step=2,
-            feedback_gain=2000.0, record_length=cfg.record_length, **common))
+            feedback_gain=2000.0, record_length=cfg.record_length, input_range=2.0,
+            **common))
         gains = run("gain_sweep", gain_sweep(
             det, list(cfg.gains), calibration=cal, mass=m_charge, records_per_step=2,
-            record_length=cfg.short_record, **common))
+            record_length=cfg.short_record, input_range=0.02, **common))
         heat_runs = {}
         g_cool = gains.get("optimal_gain", math.nan)
         g_cool = 2e4 if not math.isfinite(g_cool) else float(min(max(g_cool, 5e3), 1e5))
@@ -153,13 +156,13 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
             RE(_move(app, p * MBAR, set_feedback, g_cool))
             heat_runs[p] = run(f"reheating_cycles@{p:g}mbar", reheating_cycles(
                 det, cfg.reheating_cycles, feedback_gain=g_cool, off_time=cfg.off_time,
-                calibration=cal, mass=m_charge, **common))
+                calibration=cal, mass=m_charge, input_range=0.02, **common))
         if app.heterodyne is not None:
             for g in cfg.sideband_gains:
                 run(f"sideband_thermometry@{g:g}", sideband_thermometry(
                     [app.heterodyne], 6, apparatus=app, axis="z", feedback_gain=g))
         truth = lab.truth()
-        result.truth = {"radius": truth.radius, "mass": truth.mass, "charge": truth.charge,
+        result.truth = {"radius": truth.radius, "mass": truth.mass, "charge": charge_truth,
                         "calibration": list(setup.detector.calibration),
                         "recoil_heating": [float(v) for v in truth.recoil_heating],
                         "gas_heating_per_pa": [float(v) / truth.pressure

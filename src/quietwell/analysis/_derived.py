@@ -9,6 +9,7 @@ derived values come back as :class:`~quietwell.physics.Estimate` (value, stderr)
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -314,11 +315,17 @@ def fit_cold_damping(
     dec0 = max((n[i_lo] + 0.5) * (gamma + g[i_lo]), 1e-9)
     meas0 = max(g[i_hi] ** 2 / (16.0 * max((n[i_hi] + 0.5) * (gamma + g[i_hi]), 1e-9)), 1e-9)
     try:
-        popt, pcov = optimize.curve_fit(
-            model, g, n, p0=(math.log(dec0), math.log(meas0)), sigma=s, absolute_sigma=True, maxfev=5000
-        )
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", optimize.OptimizeWarning)
+            popt, pcov = optimize.curve_fit(
+                model, g, n, p0=(math.log(dec0), math.log(meas0)), sigma=s, absolute_sigma=True,
+                maxfev=5000,
+            )
     except RuntimeError as exc:
         raise FitError(f"cold-damping model did not converge ({exc})") from None
+    if not np.all(np.isfinite(pcov)):
+        raise FitError("the cold-damping model is not determined by these gains (no curvature "
+                       "of the occupation); sweep across the optimum")
     chi2 = float(np.sum(((n - model(g, *popt)) / s) ** 2) / max(g.size - 2, 1))
     pcov = pcov * max(1.0, chi2)
 
@@ -326,6 +333,10 @@ def fit_cold_damping(
         return cold_damping_optimum(gamma, 0.0, math.exp(p[1]), math.exp(p[0]) - gamma * 0.5)
 
     g_opt, n_min = optimum(popt)
+    if not (math.isfinite(g_opt) and g_opt <= 1.5 * float(np.max(g))):
+        raise FitError(f"the optimum gain {g_opt:.3g} 1/s lies beyond the largest swept gain "
+                       f"{float(np.max(g)):.3g} 1/s, so the measurement rate is not determined; "
+                       "extend the sweep to higher gains")
     jac = np.empty((2, 2))
     for j in range(2):
         h = np.zeros(2)

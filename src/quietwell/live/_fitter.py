@@ -11,11 +11,13 @@ then writes one event per record into the same run.
 
 from __future__ import annotations
 
+import atexit
 import math
+import multiprocessing
 import threading
 import time
 from collections import deque
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 
 import numpy as np
 from ophyd.status import Status
@@ -24,6 +26,33 @@ from ._feed import TraceFeed
 from ._record_fit import RecordAnalyzer
 
 __all__ = ["LiveFitter"]
+
+_POOL: ProcessPoolExecutor | None = None
+_POOL_LOCK = threading.Lock()
+
+
+def _process_pool() -> ProcessPoolExecutor:
+    """One fitting process shared by every fitter of this interpreter.
+
+    Fits run in a separate process so that they use the second core instead of
+    competing for the interpreter lock with the RunEngine and the catalog writer
+    ("spawn": the parent runs threads, which a fork must not copy).
+    """
+    global _POOL
+    with _POOL_LOCK:
+        if _POOL is None:
+            _POOL = ProcessPoolExecutor(max_workers=1,
+                                        mp_context=multiprocessing.get_context("spawn"))
+            atexit.register(_POOL.shutdown, wait=False, cancel_futures=True)
+        return _POOL
+
+
+def _run_analysis(analyzer, traces: dict, data: dict) -> tuple[dict | None, str, float]:
+    t0 = time.perf_counter()
+    try:
+        return analyzer.analyze(traces, data), "", time.perf_counter() - t0
+    except Exception as exc:  # noqa: BLE001 - a failed fit is recorded, never raised
+        return None, f"{type(exc).__name__}: {exc}", time.perf_counter() - t0
 
 
 def _plain(v):
@@ -50,31 +79,36 @@ class LiveFitter:
         Device name (``"fitter"``); data keys are ``f0_x``, ``f0_x_stderr``, ...
     """
 
-    def __init__(self, analyzer: RecordAnalyzer, *, name: str = "fitter") -> None:
+    def __init__(self, analyzer: RecordAnalyzer, *, name: str = "fitter",
+                 in_process: bool = False) -> None:
         self.name = name
         self.parent = None
         self.analyzer = analyzer
         self.feed = TraceFeed(self.submit)
-        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="quietwell-fit")
+        self._in_process = in_process
+        self._pool = (ThreadPoolExecutor(max_workers=1, thread_name_prefix="quietwell-fit")
+                      if in_process else None)
         self._lock = threading.Lock()
-        self._queue: deque[Future] = deque()
+        self._queue: deque[tuple[int, Future]] = deque()
         self._reading: dict = self._empty("no record yet")
 
     # --- fed by the documents ---
     def submit(self, seq_num: int, traces: dict[str, np.ndarray], data: dict) -> None:
         """Start fitting one record (called by :attr:`feed` for each ``primary`` event)."""
-        fut = self._pool.submit(self._analyze, seq_num, traces, data)
+        pool = self._pool if self._in_process else _process_pool()
+        fut = pool.submit(_run_analysis, self.analyzer, traces, data)
         with self._lock:
-            self._queue.append(fut)
+            self._queue.append((seq_num, fut))
 
-    def _analyze(self, seq_num: int, traces: dict, data: dict) -> dict:
-        t0 = time.perf_counter()
+    def _finish(self, seq_num: int, fut: Future) -> dict:
         try:
-            fields = self.analyzer.analyze(traces, data)
-        except Exception as exc:  # noqa: BLE001 - a failed fit is recorded, never raised
-            fields = self._empty(f"{type(exc).__name__}: {exc}")
+            fields, error, seconds = fut.result()
+        except Exception as exc:  # noqa: BLE001 - e.g. the fitting process died
+            fields, error, seconds = None, f"{type(exc).__name__}: {exc}", 0.0
+        if fields is None:
+            fields = self._empty(error)
         fields["record_seq_num"] = seq_num
-        fields["fit_seconds"] = time.perf_counter() - t0
+        fields["fit_seconds"] = seconds
         return fields
 
     def _empty(self, why: str) -> dict:
@@ -100,11 +134,13 @@ class LiveFitter:
             status.set_finished()
             return status
 
-        def done(fut: Future) -> None:
-            self._reading = fut.result()
+        seq_num, fut = oldest
+
+        def done(f: Future) -> None:
+            self._reading = self._finish(seq_num, f)
             status.set_finished()
 
-        oldest.add_done_callback(done)
+        fut.add_done_callback(done)
         return status
 
     @property
@@ -145,5 +181,6 @@ class LiveFitter:
         return dict(self._reading)
 
     def close(self) -> None:
-        """Stop the worker thread."""
-        self._pool.shutdown(wait=True)
+        """Stop this fitter's worker thread (the shared fitting process stays)."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=True)

@@ -67,6 +67,7 @@ def thermal_calibration_plan(
     settle_time: float = 1.0,
     sample_rate: float | None = None,
     record_length: int | None = None,
+    input_range: float | None = None,
     md: dict | None = None,
 ):
     """Calibrate the detector (V/m per axis) on thermal motion at ``pressure`` (Pa).
@@ -83,7 +84,8 @@ def thermal_calibration_plan(
     m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
     source = "setup" if mass is None else "measured"
     motion = detectors[0]
-    fs, n = yield from configure_detector(app, motion, sample_rate, record_length)
+    fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
+                                         input_range)
     fitter = LiveFitter(ModeAnalyzer(app.setup.trap.frequencies, nperseg=max(1024, n // 8)))
     md_ = run_metadata(app, "thermal_calibration",
                        {"pressure": p, "records": records, "mass": m.value,
@@ -127,6 +129,7 @@ def charge_calibration(
     settle_time: float = 0.5,
     sample_rate: float | None = None,
     record_length: int | None = None,
+    input_range: float | None = None,
     md: dict | None = None,
 ):
     """Count the charge and weigh the particle with a Coulomb drive along x.
@@ -166,7 +169,8 @@ def charge_calibration(
         raise InputError(f"drive_frequency={drive_frequency:g} Hz is within 5 % of a mode "
                          f"({', '.join(f'{f:g}' for f in f_modes)} Hz); drive off resonance")
     motion = detectors[0]
-    fs, n = yield from configure_detector(app, motion, sample_rate, record_length)
+    fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
+                                         input_range)
     analyzer = CombinedAnalyzer([ModeAnalyzer(f_modes, nperseg=max(1024, n // 8)),
                                  DriveAnalyzer(drive_frequency, axis="x")])
     fitter = LiveFitter(analyzer)

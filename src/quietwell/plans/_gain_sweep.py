@@ -88,6 +88,7 @@ def gain_sweep(
     stop_after_rises: int = 3,
     sample_rate: float | None = None,
     record_length: int | None = None,
+    input_range: float | None = None,
     md: dict | None = None,
 ):
     """Step the cold-damping gain (1/s, all axes) through ``gains`` at the present pressure.
@@ -108,7 +109,8 @@ def gain_sweep(
         raise InputError(f"calibration must give 3 values (x, y, z), got {len(cal)}")
     m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
     motion = detectors[0]
-    fs, n = yield from configure_detector(app, motion, sample_rate, record_length)
+    fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
+                                         input_range)
     analyzer = ModeAnalyzer(app.setup.trap.frequencies, nperseg=max(1024, n // 8),
                             calibration=[c.value for c in cal],
                             calibration_stderr=[c.stderr for c in cal], mass=m.value)
@@ -177,6 +179,12 @@ def _summarize_gain(app: Apparatus, steps, pressure: float) -> dict:
             out[f"optimal_gain_{axis}"] = (nan, "1/s")
             out[f"min_occupation_{axis}"] = (nan, "quanta")
             out[f"fit_status_{axis}"] = (f"{type(exc).__name__}: {exc}"[:300], "")
+        else:
+            out[f"fit_status_{axis}"] = ("ok", "")
+        if n:
+            # the lowest occupation measured: an upper bound of the minimum in any case
+            k = int(np.argmin(n))
+            out[f"lowest_occupation_{axis}"] = (Estimate(n[k], e[k]), "quanta")
     pred = predicted_cold_damping(app, pressure) if math.isfinite(pressure) else {}
     for axis, (dec, meas) in pred.items():
         g_opt, n_min = cold_damping_optimum(0.0, 0.0, meas, dec)

@@ -53,6 +53,7 @@ def pressure_sweep(
     density: float | None = None,
     sample_rate: float | None = None,
     record_length: int | None = None,
+    input_range: float | None = None,
     md: dict | None = None,
 ):
     """Step the pressure (Pa) through ``pressures`` and record at each step.
@@ -96,7 +97,8 @@ def pressure_sweep(
                  "settle_time": settle_time, "feedback_gain": gain,
                  "engage_damping": engage_damping, "density": rho}
     motion = detectors[0]
-    fs, n = yield from configure_detector(app, motion, sample_rate, record_length)
+    fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
+                                         input_range)
     fitter = LiveFitter(ModeAnalyzer(setup.trap.frequencies, nperseg=max(1024, n // 8)))
     md_ = run_metadata(app, "pressure_sweep", plan_args, md,
                        dimensions=[(["pressure"], "primary")])

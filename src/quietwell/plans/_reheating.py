@@ -55,6 +55,7 @@ def reheating_cycles(
     mass: Estimate | float | None = None,
     n_boot: int = 400,
     sample_rate: float | None = None,
+    input_range: float | None = None,
     md: dict | None = None,
 ):
     """Repeat ``cycles`` reheating cycles at the present pressure.
@@ -87,7 +88,7 @@ def reheating_cycles(
         as_estimate(c, "calibration") for c in calibration]
     m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
     motion = detectors[0]
-    rate = yield from configure_detector(app, motion, sample_rate, None)
+    rate = yield from configure_detector(app, motion, sample_rate, None, input_range)
     fs = rate[0]
     n = int(round(off_time * fs))
     fs, n = yield from configure_detector(app, motion, None, n)

@@ -42,9 +42,18 @@ def _close(fitter: LiveFitter) -> Generator:
 
 
 def configure_detector(app: Apparatus, detector: Any, sample_rate: float | None,
-                       record_length: int | None) -> Generator:
-    """Plan stub: set the sample rate (Hz) and record length (samples) before staging."""
+                       record_length: int | None, input_range: float | None = None
+                       ) -> Generator:
+    """Plan stub: set the sample rate (Hz), record length (samples) and input range (+-V)
+    before staging.
+
+    Choose the input range for the signal: a motion of a few quanta is microvolts, far
+    below one step of a digitiser set for room-temperature motion, and a quantiser
+    without enough noise ahead of it suppresses such signals.
+    """
     args: list = []
+    if input_range is not None:
+        args += [detector.input_range, float(input_range)]
     if sample_rate is not None:
         args += [detector.sample_rate, float(sample_rate)]
     if record_length is not None:
