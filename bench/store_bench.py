@@ -10,7 +10,8 @@ plugin
     a ``bluesky.RunEngine`` running ``count`` of N records of a
     ``quietwell.devices.MotionDetector`` (4 float32 channels) into a
     ``quietwell.store.EmbeddedStore``: event documents, one external SWMR HDF5 file,
-    stream_resource / stream_datum registration through the store's ``TiledWriter`` (its batch size and journal).
+    stream_resource / stream_datum registration through the store's ``TiledWriter``
+    (with the store's batch size and journal).
     The backend returns precomputed random arrays, so generating them costs nothing.
 h5py
     the same arrays written with h5py alone, in the same layout: one file, one

@@ -61,6 +61,21 @@ def _number_keys(names: Sequence[str], units: str) -> dict[str, dict]:
     return out
 
 
+def _own_peak(psd, lines: Sequence[float], own: float, band: tuple[float, float]):
+    """Fit every line in ``band`` and return the one nearest ``own`` (Hz).
+
+    A neighbouring line too weak to fit (crosstalk of another mode, a faint sideband)
+    must not cost the channel its own line: the fit is then repeated with ``own`` alone.
+    """
+    try:
+        fit = fit_psd(psd, peaks=list(lines), band=band)
+    except QuietwellError:
+        if len(lines) == 1:
+            raise
+        fit = fit_psd(psd, peaks=[own], band=band)
+    return min(fit.peaks, key=lambda p: abs(p.f0 - own))
+
+
 def _status(exc: Exception) -> str:
     return f"{type(exc).__name__}: {exc}"[:400]
 
@@ -151,14 +166,7 @@ class ModeAnalyzer:
         lo, hi = f_own * (1 - self.band_fraction), f_own * (1 + self.band_fraction)
         guesses = sorted(f for f in self.mode_frequencies if lo < f < hi)
         psd = welch_psd(trace, fs, nperseg=self.nperseg, noverlap=self.nperseg // 2)
-        try:
-            fit = fit_psd(psd, peaks=guesses, band=(lo, hi))
-        except QuietwellError:
-            if len(guesses) == 1:
-                raise
-            # a crosstalk peak too weak to fit must not cost the channel its own mode
-            fit = fit_psd(psd, peaks=[f_own], band=(lo, hi))
-        peak = min(fit.peaks, key=lambda p: abs(p.f0 - f_own))
+        peak = _own_peak(psd, guesses, f_own, (lo, hi))
         res = {
             f"f0_{axis}": peak.f0,
             f"f0_{axis}_stderr": peak.f0_stderr,
@@ -244,13 +252,7 @@ class SidebandAnalyzer:
         lo, hi = fc - self.band_fraction * f_mode, fc + self.band_fraction * f_mode
         lines = sorted({self.carrier + s * f for f in self.mode_frequencies for s in (1, -1)
                         if lo < self.carrier + s * f < hi})
-        try:
-            fit = fit_psd(psd, peaks=lines, band=(lo, hi))
-        except QuietwellError:
-            if len(lines) == 1:
-                raise
-            fit = fit_psd(psd, peaks=[fc], band=(lo, hi))
-        pk = min(fit.peaks, key=lambda p: abs(p.f0 - fc))
+        pk = _own_peak(psd, lines, fc, (lo, hi))
         return pk.area, pk.area_stderr
 
     def analyze(self, traces: Mapping[str, np.ndarray], data: Mapping) -> dict:
