@@ -107,11 +107,13 @@ def test_thermal_and_charge_calibration(bench):
     _go(RE, app, 3 * MBAR, gain=2000.0)
     (uid_c,) = RE(charge_calibration(
         [app.detector], [0, -1, -1, -1], apparatus=app, pressure=3 * MBAR,
-        drive_frequency=129e3, drive_amplitude=5.0, records_per_step=3, sample_rate=RATE,
+        drive_frequency=129e3, drive_amplitude=8.0, records_per_step=3, sample_rate=RATE,
         record_length=2**17, input_range=2.0))
     c = _summary(store, uid_c)
     truth = lab.truth()
     assert int(c["charge"]) == truth.charge + 3  # charge at the first step
+    # rounding to the nearest integer is right at > 95 % confidence when sigma < 1/4
+    assert c["charge_stderr"] < 0.25
     assert abs(c["mass"] - truth.mass) < 0.05 * truth.mass
     (uid_t,) = RE(thermal_calibration([app.detector], 3 * MBAR, apparatus=app, records=4,
                                       mass=Estimate(c["mass"], c["mass_stderr"]),
@@ -151,6 +153,22 @@ def test_gain_sweep_minimum_follows_the_cold_damping_model(bench):
                                                                   n_min, err)
 
 
+def test_gain_sweep_stops_once_past_the_optimum(bench):
+    # setup "cobalt" has a noisier detector: its x optimum (~1e4 1/s) lies well inside
+    # the gains, so the occupation rises for three steps and the sweep stops there
+    RE, store, _, _ = bench
+    app = build_apparatus(load_setup(find_profile("cobalt")), store.raw_dir)
+    connect_apparatus(app)
+    _go(RE, app, 1e-8 * MBAR, gain=2000.0)
+    gains = list(np.geomspace(2e3, 1.2e5, 12))
+    (uid,) = RE(gain_sweep([app.detector], gains, apparatus=app, records_per_step=2,
+                           stop_axes=("x",), sample_rate=RATE, record_length=2**17,
+                           input_range=0.02))
+    s = _summary(store, uid)
+    assert 5 <= int(s["steps_done"]) < len(gains)
+    assert s["fit_status_x"] == "ok"
+
+
 def test_reheating_rates_match_gas_plus_recoil(bench):
     RE, store, app, lab = bench
     _go(RE, app, 1e-7 * MBAR, gain=2e4)
@@ -171,6 +189,9 @@ def test_reheating_rates_match_gas_plus_recoil(bench):
         assert abs(s[f"predicted_heating_rate_{a}"] - expected) < allowed
     env = store.client[uid]["fits"].read()
     assert np.asarray(env["envelope_x"]).shape[0] == 120
+    ens = store.client[uid]["ensemble"].read()
+    assert int(np.asarray(ens["cycles_in_mean"])[-1]) == 120  # running mean, last = all
+    assert np.asarray(ens["ensemble_mean_x"]).shape[1] == np.asarray(env["envelope_x"]).shape[1]
 
 
 @pytest.mark.parametrize("gain", [2.7e4, 8e3, 3e3])
@@ -180,7 +201,7 @@ def test_sideband_occupation_without_calibration(bench, gain):
     RE, store, app, lab = bench
     _go(RE, app, 1e-8 * MBAR, gain=gain)
     (uid,) = RE(sideband_thermometry([app.heterodyne], 8, apparatus=app, axis="x",
-                                     feedback_gain=gain))
+                                     feedback_gain=gain, input_range=0.2))
     s = _summary(store, uid)
     n_true = float(lab.truth().occupation[0])
     assert 0.4 < n_true < 12

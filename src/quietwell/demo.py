@@ -133,7 +133,7 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         common = dict(apparatus=app, sample_rate=cfg.sample_rate)
         charge = run("charge_calibration", charge_calibration(
             det, [0, -1, -1, -1, -1], pressure=3 * MBAR,
-            drive_frequency=0.85 * setup.trap.frequencies[0], drive_amplitude=5.0,
+            drive_frequency=0.85 * setup.trap.frequencies[0], drive_amplitude=8.0,
             records_per_step=3, record_length=cfg.short_record, input_range=2.0, **common))
         m_charge = Estimate(charge["mass"], charge["mass_stderr"])
         charge_truth = store.client[result.uids["charge_calibration"]].metadata["start"][
@@ -163,7 +163,8 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         if app.heterodyne is not None:
             for g in cfg.sideband_gains:
                 run(f"sideband_thermometry@{g:g}", sideband_thermometry(
-                    [app.heterodyne], 8, apparatus=app, axis="x", feedback_gain=g))
+                    [app.heterodyne], 8, apparatus=app, axis="x", feedback_gain=g,
+                    input_range=0.2))
         truth = lab.truth()
         result.truth = {"radius": truth.radius, "mass": truth.mass, "charge": charge_truth,
                         "calibration": list(setup.detector.calibration),

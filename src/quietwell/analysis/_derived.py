@@ -378,11 +378,15 @@ class IntegerChargeFit:
         Response per elementary charge, in the amplitude's units.
     residual : float
         Largest distance of a measured ``N`` from its integer, in charges.
+    unrounded : Estimate
+        ``N0 = intercept/slope`` before rounding, with its first-order error: how sure
+        the integer is (an error well below 1/2 makes it exact).
     """
 
     charge: int
     per_charge: Estimate
     residual: float
+    unrounded: Estimate
 
 
 def fit_integer_charge(
@@ -410,4 +414,8 @@ def fit_integer_charge(
     alpha = float(np.sum(w * a * counts) / np.sum(w * counts**2))
     alpha_err = float(1.0 / math.sqrt(np.sum(w * counts**2)))
     residual = float(np.max(np.abs(a / alpha - counts)))
-    return IntegerChargeFit(charge, Estimate(alpha, alpha_err), residual)
+    b, sl = line.intercept.value, line.slope.value
+    var = ((line.intercept.stderr / sl) ** 2 + (b * line.slope.stderr / sl**2) ** 2
+           - 2 * b / sl**3 * line.covariance)
+    n0_err = math.sqrt(max(var, 0.0))
+    return IntegerChargeFit(charge, Estimate(alpha, alpha_err), residual, Estimate(n0, n0_err))

@@ -242,6 +242,8 @@ def _summarize_charge(per_step, all_fits, field, f_drive, temperature) -> dict:
                         temperature)
     return {
         "charge": (int(charge), "e"),
+        # error of the charge before rounding to the integer (well below 1/2: exact)
+        "charge_stderr": (fit.unrounded.stderr, "e"),
         "charge_residual": (fit.residual, "e"),
         "mass": (m, "kg"),
         "response_per_charge": (Estimate(sign * alpha.value, alpha.stderr), "V"),

@@ -30,6 +30,9 @@ class DerivedValues:
             self._values[key] = float(value.value)
             self._values[f"{key}_stderr"] = float(value.stderr)
             self._units[key] = self._units[f"{key}_stderr"] = units
+        elif isinstance(value, list | tuple):
+            self._values[key] = [float(v) for v in value]  # a short array, inline
+            self._units[key] = units
         else:
             self._values[key] = value if isinstance(value, str | int) else float(value)
             self._units[key] = units
@@ -53,13 +56,16 @@ class DerivedValues:
     def describe(self) -> dict:
         out = {}
         for k, v in self._values.items():
-            if isinstance(v, str):
+            shape: list[int] = []
+            if isinstance(v, list):
+                dtype, shape = "array", [len(v)]
+            elif isinstance(v, str):
                 dtype = "string"
             elif isinstance(v, bool) or (isinstance(v, int) and not isinstance(v, bool)):
                 dtype = "integer"
             else:
                 dtype = "number"
-            out[k] = {"dtype": dtype, "shape": [], "units": self._units[k],
+            out[k] = {"dtype": dtype, "shape": shape, "units": self._units[k],
                       "source": "quietwell.plans"}
         return out
 

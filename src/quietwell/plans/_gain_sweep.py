@@ -86,6 +86,7 @@ def gain_sweep(
     calibration: Sequence[Estimate | float] | None = None,
     mass: Estimate | float | None = None,
     stop_after_rises: int = 3,
+    stop_axes: Sequence[str] = AXES,
     sample_rate: float | None = None,
     record_length: int | None = None,
     input_range: float | None = None,
@@ -94,8 +95,8 @@ def gain_sweep(
     """Step the cold-damping gain (1/s, all axes) through ``gains`` at the present pressure.
 
     Each step waits ``settle_periods / gain`` of setup time, then records. The sweep stops
-    early when the total occupation rose ``stop_after_rises`` steps in a row (past the
-    optimum). Occupations need a calibration (V/m per axis, e.g. the summary of a
+    early when the occupation summed over ``stop_axes`` rose ``stop_after_rises`` steps
+    in a row (past their optimum). Occupations need a calibration (V/m per axis, e.g. the summary of a
     thermal calibration) and the mass; without them the setup's nominal values are
     used and the summary says so (``calibration_source``). Run name: ``gain_sweep``.
     """
@@ -108,6 +109,8 @@ def gain_sweep(
     if len(cal) != 3:
         raise InputError(f"calibration must give 3 values (x, y, z), got {len(cal)}")
     m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
+    if not stop_axes or any(a not in AXES for a in stop_axes):
+        raise InputError(f"stop_axes={stop_axes!r} must name axes among x, y, z")
     motion = detectors[0]
     fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
                                          input_range)
@@ -134,7 +137,7 @@ def gain_sweep(
             yield from rec.flush()
             fits = rec.fits[-records_per_step:]
             steps.append((g, fits))
-            total = sum(np.nanmean([f[f"occupation_{a}"] for f in fits]) for a in AXES)
+            total = sum(np.nanmean([f[f"occupation_{a}"] for f in fits]) for a in stop_axes)
             if totals and total > totals[-1]:
                 rises += 1
             else:

@@ -14,12 +14,13 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
+import bluesky.plan_stubs as bps
 import numpy as np
 
 from .._errors import InputError
 from ..analysis._derived import fit_heating_rate
 from ..live import LiveFitter, ModeAnalyzer
-from ..physics import AXES, GASES, Estimate, epstein_damping
+from ..physics import AXES, GASES, Estimate, epstein_damping, gas_heating_rate
 from ._common import (
     Apparatus,
     Recorder,
@@ -105,19 +106,52 @@ def reheating_cycles(
                        dimensions=[(["seq_num"], "primary")])
     values = DerivedValues("summary")
 
+    ensemble = DerivedValues("ensemble")
+
+    def emit_ensemble():
+        # running ensemble mean and spread of n(t) over the cycles fitted so far
+        env = {a: np.array([f[f"envelope_{a}"] for f in rec_ref[0].fits], dtype=float)
+               for a in AXES}
+        ensemble.clear()
+        ensemble.put("cycles_in_mean", len(rec_ref[0].fits), "")
+        for a in AXES:
+            ensemble.put(f"ensemble_mean_{a}", np.nanmean(env[a], axis=0).tolist(), "quanta")
+            spread = (np.nanstd(env[a], axis=0, ddof=1) if env[a].shape[0] > 1
+                      else np.full(env[a].shape[1], np.nan))
+            ensemble.put(f"ensemble_spread_{a}", spread.tolist(), "quanta")
+        yield from bps.trigger_and_read([ensemble], name="ensemble")
+
+    rec_ref: list = []
+
     def body(rec):
+        rec_ref.append(rec)
+        seen = 0
         for _ in range(cycles):
             yield from set_feedback(app, gain)
             yield from wait_lab(app, on)
             yield from set_feedback(app, None)
             yield from rec.record()
+            if len(rec.fits) > seen:
+                seen = len(rec.fits)
+                yield from emit_ensemble()
         yield from set_feedback(app, gain)
         yield from rec.flush()
+        yield from emit_ensemble()
         values.update(_summarize(app, rec, n_boot))
         yield from emit_summary(values)
         return values.values
 
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))
+
+
+def _gauge_accuracy(app: Apparatus, rec: Recorder) -> float:
+    """Stated accuracy (fraction) of the gauge the records used most."""
+    names = [r.get("pressure_gauge") for r in rec.primaries]
+    used = max(set(names), key=names.count) if names else None
+    for g in app.setup.vacuum.gauges:
+        if g.name == used:
+            return g.accuracy
+    return max(g.accuracy for g in app.setup.vacuum.gauges)
 
 
 def _summarize(app: Apparatus, rec: Recorder, n_boot: int) -> dict:
@@ -144,5 +178,10 @@ def _summarize(app: Apparatus, rec: Recorder, n_boot: int) -> dict:
             out[f"heating_rate_{axis}"] = (nan, "quanta/s")
             out[f"heating_rate_exp_{axis}"] = (nan, "quanta/s")
             out[f"fit_status_{axis}"] = (f"{type(exc).__name__}: {exc}"[:300], "")
-        out[f"predicted_heating_rate_{axis}"] = (pred[axis][0], "quanta/s")
+        # the prediction's error: the gauge's stated accuracy on the gas part
+        gas_part = float(gas_heating_rate(gamma, 2 * math.pi * s.trap.frequencies[i],
+                                          s.temperature))
+        acc = _gauge_accuracy(app, rec)
+        out[f"predicted_heating_rate_{axis}"] = (Estimate(pred[axis][0], acc * gas_part),
+                                                 "quanta/s")
     return out

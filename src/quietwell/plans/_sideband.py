@@ -38,6 +38,7 @@ def sideband_thermometry(
     axis: str = "z",
     feedback_gain: float | None = None,
     settle_periods: float = 30.0,
+    input_range: float | None = None,
     md: dict | None = None,
 ):
     """Record ``records`` heterodyne records and derive the occupation of ``axis``.
@@ -59,7 +60,7 @@ def sideband_thermometry(
     gain = None if feedback_gain is None else check_gain(app, feedback_gain, "feedback_gain")
     setup = app.setup
     het = app.heterodyne
-    fs, n = yield from configure_detector(app, het, None, None)
+    fs, n = yield from configure_detector(app, het, None, None, input_range)
     parts = [SidebandAnalyzer(setup.detector.heterodyne_carrier, setup.detector.lo_sign,
                               setup.trap.frequencies, nperseg=max(1024, n // 8), axis=axis)]
     if app.detector in detectors:
