@@ -515,11 +515,13 @@ def test_gauge_in_count_with_units_and_configuration(RE):
     docs = []
     RE(bp.count([dev], num=2), lambda n, d: docs.append((n, d)))
     (desc,) = [d for n, d in docs if n == "descriptor"]
-    assert units_of(desc["data_keys"]) == {"gauge-pressure": "Pa", "gauge-status": ""}
+    assert units_of(desc["data_keys"]) == {"gauge-pressure": "Pa",
+                                           "gauge-indicated_pressure": "Pa", "gauge-status": ""}
     assert set(desc["data_keys"]["gauge-status"]["choices"]) == {s.value for s in GaugeStatus}
     conf = desc["configuration"]["gauge"]
     assert conf["data"] == {
         "gauge-gas": "N2",
+        "gauge-sensitivity": 1.0,
         "gauge-range_min": 1e-7,
         "gauge-range_max": 1e3,
         "gauge-accuracy": 0.15,
@@ -528,6 +530,16 @@ def test_gauge_in_count_with_units_and_configuration(RE):
     events = [d for n, d in docs if n == "event"]
     assert [e["data"]["gauge-pressure"] for e in events] == [1e-3, 2e-3]
     assert be.log == [("read",), ("read",)]
+
+
+def test_ionization_gauge_reading_is_corrected_for_the_gas(RE):
+    # CRC Handbook relative sensitivity of He to N2: 0.18 (published); p = p_ind / S
+    dev = VacuumGauge(MockGauge([(1.8e-6, GaugeStatus.OK)]), range_pa=(1e-7, 1.0),
+                      accuracy=0.15, gas="He", sensitivity=0.18, name="ion")
+    run(dev.connect())
+    r = run(dev.read())
+    assert r["ion-indicated_pressure"]["value"] == pytest.approx(1.8e-6)
+    assert r["ion-pressure"]["value"] == pytest.approx(1e-5)
 
 
 def test_gauge_refuses_bad_configuration():

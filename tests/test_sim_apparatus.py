@@ -474,3 +474,35 @@ def test_trace_main_refuses_bad_input(tmp_path, capsys, args, msg):
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and msg in err
     assert not (tmp_path / "t.npy").exists()
+
+
+def test_ionization_gauge_in_helium_is_corrected_by_the_published_factor(tmp_path):
+    # CRC Handbook: ionization-gauge sensitivity of He relative to N2 is 0.18 (published)
+    import tomllib
+
+    import bluesky.plan_stubs as bps
+    from bluesky import RunEngine
+
+    from quietwell._profile import build_apparatus, connect_apparatus, find_profile
+    from quietwell.setup import setup_from_dict
+
+    text = (find_profile("amber") / "setup.toml").read_text().replace('gas = "N2"', 'gas = "He"')
+    setup = setup_from_dict(tomllib.loads(text), "amber-in-helium")
+    RE = RunEngine({})
+    app = build_apparatus(setup, tmp_path)
+    connect_apparatus(app)
+    lab = app.extras["lab"]
+    RE(bps.mv(app.pressure, 1e-4))  # 1e-6 mbar, inside the ionization gauge's range
+    (ion,) = [g for g in app.gauges if g.name == "ion"]
+    readings = {}
+
+    def read():
+        readings.update((yield from bps.read(ion)))
+
+    RE(read())
+    true_p = lab.pressure
+    acc = [g.accuracy for g in setup.vacuum.gauges if g.name == "ion"][0]
+    assert abs(readings["ion-pressure"]["value"] / true_p - 1) <= acc
+    # uncorrected, the gauge would be off by the factor itself
+    shown = readings["ion-indicated_pressure"]["value"] / true_p
+    assert abs(shown / 0.18 - 1) <= acc and shown < 0.5

@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from quietwell import InputError
+from quietwell.physics import GASES
 from quietwell.setup import Setup
 
 from ._chamber import ChamberParams, GaugeKind, GaugeParams
@@ -259,6 +260,8 @@ def build_sim_apparatus(
             range_pa=(g.range_min, g.range_max),
             accuracy=g.accuracy,
             gas=setup.vacuum.gas,
+            # ionization gauges read S_gas times the true pressure (published factors)
+            sensitivity=GASES[setup.vacuum.gas].ion_sensitivity if g.kind == "ionization" else 1.0,
             name=g.name,
         )
         for g in setup.vacuum.gauges

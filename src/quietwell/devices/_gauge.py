@@ -63,15 +63,22 @@ class VacuumGauge(StandardReadable):
     accuracy : float
         Stated relative accuracy of a reading (fraction, e.g. 0.15 for 15 %).
     gas : str
-        Gas species the gauge is calibrated for (e.g. ``"N2"``).
+        Gas species in the chamber (e.g. ``"N2"``).
+    sensitivity : float
+        Relative sensitivity of the gauge to ``gas`` against the gas it is calibrated for
+        (N2): 1 for N2 or a gas-independent gauge; for an ionization gauge the published
+        factor (He 0.18, Ar 1.4, ..., see :data:`quietwell.physics.GASES`). The gauge's
+        reading is divided by it, ``p_true = p_indicated / S``.
     name : str
         Device name.
 
     Notes
     -----
-    ``read()`` queries the backend once and carries ``pressure`` (Pa) and ``status``
-    (:class:`GaugeStatus`). Configuration: ``gas``, ``range_min`` and ``range_max``
-    (Pa), ``accuracy`` (fraction).
+    ``read()`` queries the backend once and carries ``pressure`` (Pa, corrected for the
+    gas), ``indicated_pressure`` (Pa, as the gauge shows it) and ``status``
+    (:class:`GaugeStatus`). The range applies to the indicated reading. Configuration:
+    ``gas``, ``sensitivity``, ``range_min`` and ``range_max`` (Pa), ``accuracy``
+    (fraction).
     """
 
     def __init__(
@@ -81,6 +88,7 @@ class VacuumGauge(StandardReadable):
         range_pa: tuple[float, float],
         accuracy: float,
         gas: str = "N2",
+        sensitivity: float = 1.0,
         name: str = "",
     ) -> None:
         lo, hi = check_limits_pair("range_pa", *range_pa, "Pa")
@@ -93,18 +101,27 @@ class VacuumGauge(StandardReadable):
             )
         if not isinstance(gas, str) or not gas:
             raise InputError(f"gas={gas!r} must name the gas species, e.g. 'N2'")
+        if (isinstance(sensitivity, bool) or not isinstance(sensitivity, int | float)
+                or not 0.0 < sensitivity < 100.0):
+            raise InputError(f"sensitivity={sensitivity!r} must be a positive factor relative to "
+                             "N2 (1 for N2; the published ionization-gauge factor of the gas)")
         self._backend = backend
         self._lo, self._hi = lo, hi
+        self._sensitivity = float(sensitivity)
         with self.add_children_as_readables(StandardReadableFormat.HINTED_SIGNAL):
             self.pressure, self._set_pressure = soft_signal_r_and_setter(
                 float, math.nan, units="Pa"
             )
         with self.add_children_as_readables():
+            self.indicated_pressure, self._set_indicated = soft_signal_r_and_setter(
+                float, math.nan, units="Pa"
+            )
             self.status, self._set_status = soft_signal_r_and_setter(
                 GaugeStatus, GaugeStatus.SENSOR_OFF, units=""
             )
         with self.add_children_as_readables(StandardReadableFormat.CONFIG_SIGNAL):
             self.gas = const_signal(gas, "")
+            self.sensitivity = const_signal(self._sensitivity, "1")
             self.range_min = const_signal(lo, "Pa")
             self.range_max = const_signal(hi, "Pa")
             self.accuracy = const_signal(float(accuracy), "1")
@@ -126,8 +143,10 @@ class VacuumGauge(StandardReadable):
             p = math.nan
         # Status first, so a subscriber never sees a number paired with a stale status.
         self._set_status(status)
-        self._set_pressure(p)
-        return p, status
+        self._set_indicated(p)
+        true_p = p / self._sensitivity
+        self._set_pressure(true_p)
+        return true_p, status
 
     async def read(self) -> dict[str, Reading]:
         await self.refresh()
