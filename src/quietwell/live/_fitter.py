@@ -22,6 +22,7 @@ from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 import numpy as np
 from ophyd.status import Status
 
+from .._plain import plain
 from ._feed import TraceFeed
 from ._record_fit import RecordAnalyzer
 
@@ -53,19 +54,6 @@ def _run_analysis(analyzer, traces: dict, data: dict) -> tuple[dict | None, str,
         return analyzer.analyze(traces, data), "", time.perf_counter() - t0
     except Exception as exc:  # noqa: BLE001 - a failed fit is recorded, never raised
         return None, f"{type(exc).__name__}: {exc}", time.perf_counter() - t0
-
-
-def _plain(v):
-    """Python types only: the writer's JSON backup cannot hold numpy scalars."""
-    if isinstance(v, np.ndarray):
-        return [float(a) for a in v.ravel()]
-    if isinstance(v, list):
-        return [float(a) for a in v]
-    if isinstance(v, np.integer):
-        return int(v)
-    if isinstance(v, float | np.floating):
-        return float(v)
-    return v
 
 
 class LiveFitter:
@@ -151,7 +139,7 @@ class LiveFitter:
 
     def read(self) -> dict:
         now = time.time()
-        return {k: {"value": _plain(v), "timestamp": now} for k, v in self._reading.items()}
+        return {k: {"value": plain(v), "timestamp": now} for k, v in self._reading.items()}
 
     def describe(self) -> dict:
         d = self.analyzer.describe()

@@ -17,6 +17,7 @@ from bluesky.utils import short_uid
 
 from .. import __version__
 from .._errors import InputError, LimitError
+from .._plain import plain
 from ..live import LiveFitter
 from ..physics import AXES
 from ..setup import Setup
@@ -151,14 +152,6 @@ class _PressurePick(DerivedValues):
             self.put("sim_pressure", true_p, "Pa")
 
 
-def _plain(value):
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, np.generic):
-        return value.item()
-    return value
-
-
 class Recorder:
     """Acquire records into ``primary`` and their fits into ``fits``, one behind.
 
@@ -200,11 +193,11 @@ class Recorder:
         readings: dict = {}
         for det in self.detectors:
             r = yield from bps.read(det)
-            readings.update({k: _plain(v["value"]) for k, v in (r or {}).items()})
+            readings.update({k: plain(v["value"]) for k, v in (r or {}).items()})
         for g in self.app.gauges:
             if g not in self.detectors:
                 r = yield from bps.read(g)
-                readings.update({k: _plain(v["value"]) for k, v in (r or {}).items()})
+                readings.update({k: plain(v["value"]) for k, v in (r or {}).items()})
         p, name = self._choose(readings)
         true_p = self.app.sim_pressure() if self.app.sim_pressure is not None else math.nan
         self.pick.set(p, name, true_p)
@@ -219,7 +212,7 @@ class Recorder:
     def _read_fit(self):
         r = yield from bps.trigger_and_read([self.fitter], name="fits")
         self._outstanding -= 1
-        self.fits.append({k: _plain(v["value"]) for k, v in r.items()})
+        self.fits.append({k: plain(v["value"]) for k, v in r.items()})
 
     def flush(self):
         while self._outstanding > 0:

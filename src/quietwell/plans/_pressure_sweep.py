@@ -12,6 +12,7 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
+import bluesky.plan_stubs as bps
 import numpy as np
 
 from .._errors import InputError
@@ -34,6 +35,7 @@ from ._common import (
     run_metadata,
     set_feedback,
     wait_lab,
+    weighted_mean,
 )
 from ._derived_device import DerivedValues
 from ._runner import configure_detector, run_with_fitter
@@ -132,8 +134,6 @@ def pressure_sweep(
 
 def set_setpoint(app: Apparatus, p: float):
     """Plan stub: move the pressure controller and wait until it reports settled."""
-    import bluesky.plan_stubs as bps
-
     yield from bps.mv(app.pressure, float(p))
 
 
@@ -161,8 +161,6 @@ def summarize_pressure_sweep(pairs: Sequence[tuple[dict, dict]], feedback_flags:
         out.update({"damping_slope": (nan, "1/(s*Pa)"), "radius": (nan, "m"),
                     "mass": (nan, "kg")})
         return out
-    from ._common import weighted_mean
-
     s, s_err = weighted_mean(slopes, slope_errs)
     out["damping_slope"] = (Estimate(s, s_err), "1/(s*Pa)")
     r = radius_from_slope(s, s_err, density, temperature, gas)

@@ -11,24 +11,20 @@ process dies mid-run, :func:`replay_journal` rebuilds the run in the catalog fro
 from __future__ import annotations
 
 import json
-import math
 import os
 from pathlib import Path
 from typing import Any
 
-import numpy as np
+from .._plain import plain
 
 __all__ = ["Journal", "replay_journal", "unfinished_runs"]
 
 
 def _jsonable(obj: Any) -> Any:
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    if isinstance(obj, np.generic):
-        return obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return obj
-    raise TypeError(f"cannot journal a {type(obj).__name__}")
+    out = plain(obj)
+    if out is obj:
+        raise TypeError(f"cannot journal a {type(obj).__name__}")
+    return out
 
 
 class Journal:
