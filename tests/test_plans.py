@@ -115,6 +115,7 @@ def test_thermal_and_charge_calibration(bench):
     # rounding to the nearest integer is right at > 95 % confidence when sigma < 1/4
     assert c["charge_stderr"] < 0.25
     assert abs(c["mass"] - truth.mass) < 0.05 * truth.mass
+    assert abs(c["mass"] - truth.mass) < 3 * c["mass_stderr"]  # and its error is honest
     (uid_t,) = RE(thermal_calibration([app.detector], 3 * MBAR, apparatus=app, records=4,
                                       mass=Estimate(c["mass"], c["mass_stderr"]),
                                       sample_rate=RATE, record_length=2**19))

@@ -134,7 +134,7 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         charge = run("charge_calibration", charge_calibration(
             det, [0, -1, -1, -1, -1], pressure=3 * MBAR,
             drive_frequency=0.85 * setup.trap.frequencies[0], drive_amplitude=8.0,
-            records_per_step=3, record_length=cfg.short_record, input_range=2.0, **common))
+            records_per_step=5, record_length=cfg.short_record, input_range=2.0, **common))
         m_charge = Estimate(charge["mass"], charge["mass_stderr"])
         charge_truth = store.client[result.uids["charge_calibration"]].metadata["start"][
             "sim_truth"]["charge_e"]
@@ -153,7 +153,7 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         heat_runs = {}
         g_cool = gains.get("optimal_gain", math.nan)
         g_cool = 2e4 if not math.isfinite(g_cool) else float(min(max(g_cool, 5e3), 1e5))
-        for p in sorted(cfg.reheating_pressures_mbar):
+        for p in sorted(cfg.reheating_pressures_mbar, reverse=True):  # ends pumped down
             from .plans._common import set_feedback
 
             RE(_move(app, p * MBAR, set_feedback, g_cool))
@@ -292,8 +292,11 @@ def format_report(r: DemoResult) -> str:
     for name, summ in s.items():
         if name.startswith("sideband_thermometry@"):
             occ = per_run.get(name, {}).get("occupation", [math.nan] * 3)
-            add(f"occupation x (sidebands, gain {name.split('@')[1]}/s)",
-                _pm(summ, "occupation", fmt=".3g"), f"{occ[0]:.3g}")
+            measured = _pm(summ, "occupation", fmt=".3g")
+            if not math.isfinite(summ.get("occupation", math.nan)):
+                measured = f">= {summ.get('occupation_lower_bound', math.nan):.3g} (ratio ~ 1)"
+            add(f"occupation x (sidebands, gain {name.split('@')[1]}/s)", measured,
+                f"{occ[0]:.3g}")
     widths = [max(len(row[i]) for row in rows) for i in range(4)]
     lines = ["  ".join(c.ljust(w) for c, w in zip(row, widths, strict=True)) for row in rows]
     lines.insert(1, "  ".join("-" * w for w in widths))

@@ -270,13 +270,17 @@ class SidebandAnalyzer:
             a_as, e_as = self._area(psd, self.carrier - s * f_mode, f_mode)
             ratio = a_as / a_s
             r_err = ratio * math.hypot(e_as / a_as, e_s / a_s)
-            n = sideband_occupation(ratio, r_err)
             out.update({f"stokes_area_{a}": a_s, f"stokes_area_{a}_stderr": e_s,
                         f"antistokes_area_{a}": a_as, f"antistokes_area_{a}_stderr": e_as,
                         f"sideband_ratio_{a}": ratio, f"sideband_ratio_{a}_stderr": r_err,
-                        f"sideband_occupation_{a}": n.value,
-                        f"sideband_occupation_{a}_stderr": n.stderr,
                         f"sideband_status_{a}": "ok"})
+            # A hot mode's ratio is near 1 and one record's can exceed it: the areas are
+            # kept (a summary combines them over records, dropping none), only this
+            # record's own occupation is then undefined.
+            if 0.0 <= ratio < 1.0:
+                n = sideband_occupation(ratio, r_err)
+                out[f"sideband_occupation_{a}"] = n.value
+                out[f"sideband_occupation_{a}_stderr"] = n.stderr
         except _FAILURES as exc:
             out[f"sideband_status_{a}"] = _status(exc)
         return out

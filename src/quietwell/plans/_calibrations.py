@@ -151,8 +151,10 @@ def charge_calibration(
     share a time base), so the phasors of all records share one reference and a sign
     change of the charge shows as a phase flip by pi.
 
-    Summary: ``charge`` (elementary charges, integer, at the first step), ``mass`` (kg,
-    from the drive referenced to the thermal area, no density assumed), the response
+    The first ``records_per_step`` records are taken with the drive off: their thermal
+    area is the reference of the mass. Summary: ``charge`` (elementary charges, integer,
+    at the first step), ``mass`` (kg, from the drive referenced to that thermal area, no
+    density assumed), the response
     per charge and the field per volt used. Run name: ``charge_calibration``.
     """
     app = apparatus
@@ -187,6 +189,14 @@ def charge_calibration(
         yield from set_feedback(app, None)
         yield from set_setpoint(app, p)
         el = app.electrodes
+        # the thermal reference with the drive off: a line inside the fitted band would
+        # bias the thermal area, and with it the mass
+        yield from bps.mv(el.drive_enabled, False)
+        yield from wait_lab(app, settle_time)
+        for _ in range(records_per_step):
+            yield from rec.record()
+        yield from rec.flush()
+        thermal_fits = list(rec.fits)
         yield from bps.mv(el.drive_frequency, float(drive_frequency),
                           el.drive_amplitude, float(drive_amplitude))
         yield from bps.mv(el.drive_enabled, True)
@@ -203,7 +213,7 @@ def charge_calibration(
                 per_step.append((cumulative, rec.pairs()[-records_per_step:]))
         finally:
             yield from bps.mv(el.drive_enabled, False)
-        values.update(_summarize_charge(per_step, rec.fits, field, drive_frequency,
+        values.update(_summarize_charge(per_step, thermal_fits, field, drive_frequency,
                                         setup.temperature))
         yield from emit_summary(values)
         return values.values
@@ -211,7 +221,7 @@ def charge_calibration(
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))
 
 
-def _summarize_charge(per_step, all_fits, field, f_drive, temperature) -> dict:
+def _summarize_charge(per_step, thermal_fits, field, f_drive, temperature) -> dict:
     # the drive is phase-locked to the setup clock (phase Omega_d t at setup time t), so
     # a record starting at t_s sees the phasor turned by Omega_d t_s: turn it back
     wd = 2 * math.pi * f_drive
@@ -234,7 +244,7 @@ def _summarize_charge(per_step, all_fits, field, f_drive, temperature) -> dict:
     fit = fit_integer_charge(amps, errs, ks)
     charge = fit.charge
     alpha = fit.per_charge
-    area, area_err, f0, gamma = _mean_area(all_fits, "x")
+    area, area_err, f0, gamma = _mean_area(thermal_fits, "x")
     sign = 1 if charge >= 0 else -1
     drive_area = alpha.value**2 / 2.0
     m = mass_from_drive(drive_area, abs(alpha.value) * alpha.stderr, area, area_err,

@@ -91,6 +91,11 @@ def sideband_thermometry(
             except InputError:
                 occ = Estimate(math.nan, math.nan)
             values.put("sideband_ratio", Estimate(ratio, r_err), "1")
+            # a hot mode's ratio is close to 1, where n = R/(1 - R) is ill-determined:
+            # the one-sided 97.7 % lower bound from R - 2 sigma_R is still informative
+            r_lo = ratio - 2.0 * r_err
+            values.put("occupation_lower_bound",
+                       r_lo / (1.0 - r_lo) if 0.0 <= r_lo < 1.0 else 0.0, "quanta")
         else:
             occ = Estimate(math.nan, math.nan)
         values.put("occupation", occ, "quanta")
