@@ -72,7 +72,11 @@ def _own_peak(psd, lines: Sequence[float], own: float, band: tuple[float, float]
     except QuietwellError:
         if len(lines) == 1:
             raise
-        fit = fit_psd(psd, peaks=[own], band=band)
+        # alone, and in a band that stops halfway to the nearest other line, so that
+        # the line left out cannot be absorbed into this one
+        half = 0.5 * min(abs(f - own) for f in lines if f != own)
+        narrow = (max(band[0], own - half), min(band[1], own + half))
+        fit = fit_psd(psd, peaks=[own], band=narrow)
     return min(fit.peaks, key=lambda p: abs(p.f0 - own))
 
 
