@@ -323,9 +323,6 @@ def fit_cold_damping(
             )
     except RuntimeError as exc:
         raise FitError(f"cold-damping model did not converge ({exc})") from None
-    if not np.all(np.isfinite(pcov)):
-        raise FitError("the cold-damping model is not determined by these gains (no curvature "
-                       "of the occupation); sweep across the optimum")
     chi2 = float(np.sum(((n - model(g, *popt)) / s) ** 2) / max(g.size - 2, 1))
     pcov = pcov * max(1.0, chi2)
 
@@ -337,6 +334,9 @@ def fit_cold_damping(
         raise FitError(f"the optimum gain {g_opt:.3g} 1/s lies beyond the largest swept gain "
                        f"{float(np.max(g)):.3g} 1/s, so the measurement rate is not determined; "
                        "extend the sweep to higher gains")
+    if not np.all(np.isfinite(pcov)):
+        raise FitError("the cold-damping model is not determined by these gains (no curvature "
+                       "of the occupation); sweep across the optimum")
     jac = np.empty((2, 2))
     for j in range(2):
         h = np.zeros(2)

@@ -61,22 +61,26 @@ def _number_keys(names: Sequence[str], units: str) -> dict[str, dict]:
     return out
 
 
-def _own_peak(psd, lines: Sequence[float], own: float, band: tuple[float, float]):
+def _own_peak(psd, lines: Sequence[float], own: float, band: tuple[float, float],
+              *, strong_neighbours: bool = False):
     """Fit every line in ``band`` and return the one nearest ``own`` (Hz).
 
-    A neighbouring line too weak to fit (crosstalk of another mode, a faint sideband)
-    must not cost the channel its own line: the fit is then repeated with ``own`` alone.
+    A neighbouring line that cannot be fitted must not cost the channel its own line:
+    the fit is then repeated with ``own`` alone. A weak neighbour (crosstalk of another
+    mode, far below the channel's own line) may stay in the band; a strong one
+    (``strong_neighbours``: the sidebands of other modes) must not be absorbed.
     """
     try:
         fit = fit_psd(psd, peaks=list(lines), band=band)
     except QuietwellError:
         if len(lines) == 1:
             raise
-        # alone, and in a band that stops halfway to the nearest other line, so that
-        # the line left out cannot be absorbed into this one
-        half = 0.5 * min(abs(f - own) for f in lines if f != own)
-        narrow = (max(band[0], own - half), min(band[1], own + half))
-        fit = fit_psd(psd, peaks=[own], band=narrow)
+        if strong_neighbours:
+            # alone, in a band that stops halfway to the nearest other line, so that the
+            # line left out cannot be absorbed into this one
+            half = 0.5 * min(abs(f - own) for f in lines if f != own)
+            band = (max(band[0], own - half), min(band[1], own + half))
+        fit = fit_psd(psd, peaks=[own], band=band)
     return min(fit.peaks, key=lambda p: abs(p.f0 - own))
 
 
@@ -256,7 +260,7 @@ class SidebandAnalyzer:
         lo, hi = fc - self.band_fraction * f_mode, fc + self.band_fraction * f_mode
         lines = sorted({self.carrier + s * f for f in self.mode_frequencies for s in (1, -1)
                         if lo < self.carrier + s * f < hi})
-        pk = _own_peak(psd, lines, fc, (lo, hi))
+        pk = _own_peak(psd, lines, fc, (lo, hi), strong_neighbours=True)
         return pk.area, pk.area_stderr
 
     def analyze(self, traces: Mapping[str, np.ndarray], data: Mapping) -> dict:
