@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from quietwell import InputError
+from quietwell._profile import connect_apparatus  # re-exported: one implementation
 from quietwell.physics import GASES
 from quietwell.setup import Setup
 
@@ -315,34 +316,3 @@ def build_sim_apparatus(
             },
         },
     )
-
-
-def connect_apparatus(apparatus: Apparatus, timeout: float = 10.0) -> None:
-    """Connect every device of ``apparatus`` in the RunEngine's event loop.
-
-    A :class:`bluesky.RunEngine` must exist first (it runs the loop the devices
-    belong to). Connecting adopts the simulated hardware's state and sends nothing.
-    Uses ``bluesky.run_engine.call_in_bluesky_event_loop`` with ophyd-async's
-    ``wait_for_connection``, as ``ophyd_async.core.init_devices`` does.
-
-    Raises
-    ------
-    InputError
-        If no RunEngine event loop is running.
-    """
-    from bluesky.run_engine import call_in_bluesky_event_loop
-    from ophyd_async.core import wait_for_connection
-
-    devices = apparatus.devices()
-    coros = {dev.name: dev.connect(timeout=timeout) for dev in devices}
-    try:
-        call_in_bluesky_event_loop(wait_for_connection(**coros))
-    except RuntimeError as exc:
-        if "event loop not running" not in str(exc):
-            raise
-        for c in coros.values():
-            c.close()
-        raise InputError(
-            "no RunEngine event loop is running; create bluesky.RunEngine() before "
-            "connect_apparatus(apparatus)"
-        ) from None

@@ -46,13 +46,29 @@ def build_apparatus(setup: Setup | str | Path, raw_dir: str | Path):
 def connect_apparatus(apparatus, timeout: float = 10.0) -> None:
     """Connect every device of ``apparatus`` in the RunEngine's event loop.
 
-    A ``bluesky.RunEngine`` must exist first (it owns the loop).
+    A :class:`bluesky.RunEngine` must exist first (it runs the loop the devices
+    belong to). Connecting adopts the hardware's state and sends nothing to it.
+    Uses ``bluesky.run_engine.call_in_bluesky_event_loop`` with ophyd-async's
+    ``wait_for_connection``, as ``ophyd_async.core.init_devices`` does.
+
+    Raises
+    ------
+    InputError
+        If no RunEngine event loop is running.
     """
-    import asyncio
-
     from bluesky.run_engine import call_in_bluesky_event_loop
+    from ophyd_async.core import wait_for_connection
 
-    async def connect_all() -> None:
-        await asyncio.gather(*(d.connect(timeout=timeout) for d in apparatus.devices()))
-
-    call_in_bluesky_event_loop(connect_all())
+    devices = apparatus.devices()
+    coros = {dev.name: dev.connect(timeout=timeout) for dev in devices}
+    try:
+        call_in_bluesky_event_loop(wait_for_connection(**coros))
+    except RuntimeError as exc:
+        if "event loop not running" not in str(exc):
+            raise
+        for c in coros.values():
+            c.close()
+        raise InputError(
+            "no RunEngine event loop is running; create bluesky.RunEngine() before "
+            "connect_apparatus(apparatus)"
+        ) from None

@@ -154,9 +154,7 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         g_cool = gains.get("optimal_gain", math.nan)
         g_cool = 2e4 if not math.isfinite(g_cool) else float(min(max(g_cool, 5e3), 1e5))
         for p in sorted(cfg.reheating_pressures_mbar, reverse=True):  # ends pumped down
-            from .plans._common import set_feedback
-
-            RE(_move(app, p * MBAR, set_feedback, g_cool))
+            RE(_move(app, p * MBAR, g_cool))
             heat_runs[p] = run(f"reheating_cycles@{p:g}mbar", reheating_cycles(
                 det, cfg.reheating_cycles, feedback_gain=g_cool, off_time=cfg.off_time,
                 calibration=cal, mass=m_charge, input_range=0.02, **common))
@@ -208,8 +206,11 @@ def _first(col):
     return v.item() if isinstance(v, np.generic) else v
 
 
-def _move(app, pressure_pa: float, set_feedback, gain: float):
+def _move(app, pressure_pa: float, gain: float):
+    """Plan stub: cold damping at ``gain`` (1/s), then the pressure to ``pressure_pa``."""
     import bluesky.plan_stubs as bps
+
+    from .plans import set_feedback
 
     yield from set_feedback(app, gain)
     yield from bps.mv(app.pressure, pressure_pa)

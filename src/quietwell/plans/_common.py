@@ -230,16 +230,27 @@ def emit_summary(values: DerivedValues):
 
 def weighted_mean(values: Sequence[float], errors: Sequence[float]) -> tuple[float, float]:
     """Weighted mean and its error, the error inflated by sqrt(reduced chi2) when > 1."""
+    m, err, _ = weighted_mean_chi2(values, errors)
+    return m, err
+
+
+def weighted_mean_chi2(values: Sequence[float], errors: Sequence[float]
+                       ) -> tuple[float, float, float]:
+    """:func:`weighted_mean` and the reduced chi2 of the values about it (nan for one value).
+
+    Non-finite values and errors <= 0 are left out.
+    """
     v = np.asarray(values, dtype=float)
     e = np.asarray(errors, dtype=float)
     ok = np.isfinite(v) & np.isfinite(e) & (e > 0)
     v, e = v[ok], e[ok]
     if v.size == 0:
-        return math.nan, math.nan
+        return math.nan, math.nan, math.nan
     w = 1 / e**2
     m = float(np.sum(w * v) / np.sum(w))
     err = float(1 / math.sqrt(np.sum(w)))
+    chi2 = math.nan
     if v.size > 1:
         chi2 = float(np.sum(w * (v - m) ** 2) / (v.size - 1))
         err *= math.sqrt(max(1.0, chi2))
-    return m, err
+    return m, err, chi2

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import math
 import time
 from collections.abc import Mapping
 
@@ -82,6 +81,3 @@ class DerivedValues:
         st.set_finished()
         return st
 
-
-def finite(x: float) -> bool:
-    return isinstance(x, float | int) and math.isfinite(x)

@@ -21,11 +21,11 @@ from ..live import LiveFitter, ModeAnalyzer
 from ..physics import (
     AXES,
     GASES,
-    K_B,
     Estimate,
     epstein_damping,
     mass_from_slope,
     radius_from_slope,
+    thermal_calibration,
 )
 from ._common import (
     Apparatus,
@@ -36,6 +36,7 @@ from ._common import (
     set_feedback,
     wait_lab,
     weighted_mean,
+    weighted_mean_chi2,
 )
 from ._derived_device import DerivedValues
 from ._runner import configure_detector, run_with_fitter
@@ -173,17 +174,12 @@ def summarize_pressure_sweep(pairs: Sequence[tuple[dict, dict]], feedback_flags:
                  for (prim, fit), fb in zip(pairs, feedback_flags, strict=False)
                  if not fb and fit.get(f"fit_status_{axis}") == "ok"]
         if len(areas) >= 2:
-            a = np.array([x[0] for x in areas])
-            e = np.array([x[1] for x in areas])
-            w = 1 / e**2
-            mean = float(np.sum(w * a) / np.sum(w))
-            chi2 = float(np.sum(w * (a - mean) ** 2) / (a.size - 1))
-            mean_err = float(1 / math.sqrt(np.sum(w))) * math.sqrt(max(1.0, chi2))
+            mean, mean_err, chi2 = weighted_mean_chi2([x[0] for x in areas],
+                                                      [x[1] for x in areas])
             omega = 2 * math.pi * float(np.mean([x[2] for x in areas]))
-            c = math.sqrt(mean * m.value * omega**2 / (K_B * temperature))
-            c_rel = 0.5 * math.hypot(mean_err / mean, m.relative)
+            c = thermal_calibration(mean, mean_err, m.value, m.stderr, omega, temperature)
             out[f"thermalization_chi2_{axis}"] = (chi2, "1")
-            out[f"thermal_calibration_{axis}"] = (Estimate(c, c * c_rel), "V/m")
+            out[f"thermal_calibration_{axis}"] = (c, "V/m")
     return out
 
 

@@ -164,6 +164,7 @@ def _summarize(app: Apparatus, rec: Recorder, n_boot: int) -> dict:
     gamma = float(epstein_damping(s.particle.radius, s.particle.density, p_mean,
                                   s.temperature, GASES[s.vacuum.gas]))
     pred = predicted_cold_damping(app, p_mean)
+    acc = _gauge_accuracy(app, rec)
     for i, axis in enumerate(AXES):
         t = np.asarray(rec.fits[0]["envelope_time"], dtype=float)
         env = np.array([f[f"envelope_{axis}"] for f in rec.fits], dtype=float)
@@ -181,7 +182,6 @@ def _summarize(app: Apparatus, rec: Recorder, n_boot: int) -> dict:
         # the prediction's error: the gauge's stated accuracy on the gas part
         gas_part = float(gas_heating_rate(gamma, 2 * math.pi * s.trap.frequencies[i],
                                           s.temperature))
-        acc = _gauge_accuracy(app, rec)
         out[f"predicted_heating_rate_{axis}"] = (Estimate(pred[axis][0], acc * gas_part),
                                                  "quanta/s")
     return out
