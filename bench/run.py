@@ -219,14 +219,13 @@ def analysis_floor(ctx: Context) -> list[Row]:
             f"{t['floor:cpu'] * 1e3:.0f} ms, ratio {t['ours:cpu'] / t['floor:cpu']:.2f}); "
             f"PSD alone / floor {psd_only / t['floor']:.2f}",
             note=(
-                "The floor is pocketfft on both cores with nothing else. Our PSD adds, per "
-                "segment, the mean (detrend), the window multiply and the |X|**2 sum: about "
-                "0.5x the FFT's CPU time, measured single-threaded per channel; the segment "
-                "mean is removed after the FFT (exact by linearity for cosine-sum windows), "
-                "which saves one pass. The fits add about 7 ms CPU per channel, mostly the "
+                "The floor is pocketfft on both cores with nothing else. Our PSD transforms "
+                "the raw segments and adds one compiled pass per block that applies the "
+                "window along frequency (3 taps for Hann), removes the mean (X[0] = 0) and "
+                "sums |X|**2. The fits add a few ms CPU per channel, mostly the "
                 "window-exact model (an N-point FFT of the windowed autocovariance per "
-                "evaluation), which keeps linewidths unbiased at a few bins per linewidth "
-                "(+1.2 % bias in gamma without it at 4 bins, see tests/test_fit.py)."
+                "evaluation) for lines narrower than 10 bins, which keeps linewidths "
+                "unbiased (+1.2 % bias in gamma without it at 4 bins, see tests/test_fit.py)."
             ),
         )
     ]

@@ -23,6 +23,8 @@ CASES = [
     ("boxcar", 777, 0, False),
     (("kaiser", 8.0), 2048, 1536, "constant"),
     ("blackmanharris", 512, 384, "none"),
+    ("hamming", 640, 320, "constant"),
+    ("blackman", 257, 128, "constant"),
 ]
 
 
@@ -53,6 +55,33 @@ def test_equals_scipy_signal_welch(dtype, shape, window, nperseg, noverlap, detr
     assert ours.psd.dtype == dtype
     assert ours.psd.shape == ref.shape
     assert ours.n_segments == (shape[-1] - noverlap) // (nperseg - noverlap)
+
+
+@pytest.mark.parametrize("window", ["hann", "hamming", "blackman", "boxcar"])
+@pytest.mark.parametrize("detrend", ["constant", "none"])
+def test_numpy_fallback_of_the_frequency_window_equals_scipy(monkeypatch, window, detrend):
+    # Without numba the window is convolved along frequency by numpy: the same
+    # result as scipy.signal.welch (reference library), odd and even lengths.
+    from quietwell.analysis import _welch
+
+    monkeypatch.setattr(_welch, "_taps_power", _welch._taps_power_numpy)
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(2, 30_000)) + 0.5
+    for nperseg in (1024, 999):
+        ours = welch_psd(x, 1e4, nperseg=nperseg, noverlap=nperseg // 2, window=window, detrend=detrend)
+        _, ref = scipy.signal.welch(
+            x, 1e4, window=window, nperseg=nperseg, noverlap=nperseg // 2,
+            detrend=False if detrend == "none" else detrend,
+        )
+        keep = ref > 1e-12 * ref.max()  # the DC bin of a detrended boxcar is ~0
+        np.testing.assert_allclose(ours.psd[keep], ref[keep], rtol=1e-9)
+
+
+def test_non_finite_sample_is_named_on_the_frequency_path():
+    x = np.random.default_rng(6).normal(size=2**15).astype(np.float32)
+    x[12345] = np.nan
+    with pytest.raises(InputError, match="12345"):
+        welch_psd(x, 1e3, nperseg=1024, noverlap=512)
 
 
 @pytest.mark.parametrize("offset", [0.0, 30.0, 1000.0])
@@ -144,6 +173,9 @@ def test_no_record_sized_allocation():
     # The record is processed in blocks: the largest traced allocation stays far
     # below the size of the record (the design goal of the block accumulation).
     x = np.random.default_rng(0).normal(size=2**23).astype(np.float32)
+    # Warm-up on a short slice: the first call may compile the numba kernel,
+    # whose one-off allocations are not the accumulation's.
+    welch_psd(x[: 2**16], 1e6, nperseg=2**14, noverlap=2**13)
     tracemalloc.start()
     try:
         welch_psd(x, 1e6, nperseg=2**14, noverlap=2**13)

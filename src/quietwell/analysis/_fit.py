@@ -538,9 +538,13 @@ def _find_peaks(
     threshold = n_sigma * sigma_ln
     log_s = np.log(np.maximum(smooth, floor * 1e-12))
     baseline = np.log(_running_median(smooth, max(101, p.size // 4)))
-    idx, props = scipy.signal.find_peaks(log_s, height=math.log(floor) + threshold, prominence=threshold)
-    keep = log_s[idx] - baseline[idx] >= threshold
-    idx, prominence = idx[keep], props["prominences"][keep]
+    idx, _ = scipy.signal.find_peaks(log_s, height=math.log(floor) + threshold)
+    # The same filters as find_peaks(..., prominence=threshold) followed by the
+    # baseline test, in the cheaper order: prominences only of the survivors.
+    idx = idx[log_s[idx] - baseline[idx] >= threshold]
+    prominence = scipy.signal.peak_prominences(log_s, idx)[0]
+    keep = prominence >= threshold
+    idx, prominence = idx[keep], prominence[keep]
     idx = idx[np.argsort(prominence)[::-1]]
     if wanted is not None:
         idx = idx[:wanted]

@@ -1,10 +1,19 @@
 """Welch power spectral density, accumulated block by block.
 
 The record is never copied whole: a strided view of the record is cut into
-blocks of a few dozen segments, each block is detrended and windowed into one
-reusable buffer, transformed with :func:`scipy.fft.rfft` (single precision for
-``float32`` input) and its squared magnitude is added to a running sum.  Peak
-extra memory is therefore a few blocks, independent of the record length.
+blocks of a few dozen segments, each block is transformed with
+:func:`scipy.fft.rfft` (single precision for ``float32`` input) and its squared
+magnitude is added to a running sum.  Peak extra memory is therefore a few
+blocks, independent of the record length.
+
+For a window whose spectrum has only a few non-zero bins (the cosine-sum
+windows: Hann, Hamming, Blackman, boxcar) the raw segments are transformed and
+the window is applied afterwards as a short convolution along frequency,
+``Y[k] = sum_j c_j X[k - j]`` with ``c_j = rfft(w)[|j|] / N``, fused with the
+squared magnitude and the accumulation in one pass (compiled with numba where
+it is installed).  Removing the segment mean is then exact and free: it is
+``X[0] = 0`` before the convolution.  Other windows, and linear detrending,
+are applied to the samples before the transform.
 """
 
 from __future__ import annotations
@@ -24,10 +33,15 @@ from quietwell._errors import InputError
 
 __all__ = ["PSDResult", "welch_psd", "welch_effective_averages", "bin_correlation_factor"]
 
+try:  # numba compiles the fused window-convolution / power kernel; numpy is the fallback
+    import numba as _numba
+except Exception:  # pragma: no cover - numba missing or broken
+    _numba = None
+
 #: Target size of one block of windowed segments in bytes.  Small enough to
 #: stay in the processor cache between the detrend, window, FFT and
 #: accumulation passes; large enough that the per-call overhead is negligible.
-_BLOCK_BYTES = 1 << 20
+_BLOCK_BYTES = 1 << 21
 
 _DETRENDS = ("constant", "linear", "none")
 
@@ -212,32 +226,141 @@ def _raise_non_finite(row: np.ndarray, channel: int | None, dtype: np.dtype):
     )
 
 
-#: A window whose spectrum has at most this many non-negligible bins gets its
-#: segment mean removed after the FFT (one pass less over the data).
+#: A window whose spectrum has at most this many non-negligible bins (and no
+#: imaginary part: a periodic, symmetric window) is applied along frequency.
 _MAX_WINDOW_BINS = 16
 #: ... as long as the segment means are at most this many times the rms of
-#: the detrended samples; larger offsets lose float32 precision in the FFT.
+#: the detrended samples; larger offsets lose float32 precision in the FFT of
+#: the raw segment, and such a block is redone with the mean removed first.
 _MAX_OFFSET_RATIO = 10.0
 
 
-def _window_spectrum(w64: np.ndarray, dtype: np.dtype) -> np.ndarray | None:
-    """The first bins of rfft(window) if all others are negligible, else None."""
+def _window_taps(w64: np.ndarray) -> np.ndarray | None:
+    """``c_j = rfft(w)[j] / N`` for ``j = 0..h`` if the window's spectrum is real and
+    has only these bins (``h < _MAX_WINDOW_BINS``), else None."""
+    n = w64.size
     spec = np.fft.rfft(w64)
-    big = np.flatnonzero(np.abs(spec) > 1e-9 * abs(spec[0]))
-    if big.size == 0 or big[-1] >= _MAX_WINDOW_BINS:
+    scale = abs(spec[0])
+    if scale == 0.0 or np.max(np.abs(spec.imag)) > 1e-9 * scale:
         return None
-    return spec[: big[-1] + 1].astype(np.result_type(dtype, np.complex64))
+    big = np.flatnonzero(np.abs(spec.real) > 1e-9 * scale)
+    h = int(big[-1])
+    if h >= _MAX_WINDOW_BINS or n < 2 * h + 2:
+        return None
+    return np.ascontiguousarray(spec.real[: h + 1] / n)
+
+
+def _taps_power_loop(spec, taps, n, acc):  # pragma: no cover - compiled by numba
+    """``acc[k] += sum_rows |sum_j c_|j| X[k - j]|**2`` over the one-sided bins.
+
+    ``X[-m] = conj(X[m])`` and ``X[m] = conj(X[n - m])`` beyond the last bin, so the
+    convolution is the exact spectrum of the windowed segment.
+    """
+    rows, m = spec.shape
+    h = taps.size - 1
+    if h == 1:  # Hann, Hamming: the common case; the interior loop vectorises
+        c0 = taps[0]
+        c1 = taps[1]
+        for i in range(rows):
+            x0 = spec[i, 0]
+            x1 = spec[i, 1]
+            yr = c0 * x0.real + 2.0 * c1 * x1.real  # X[-1] = conj(X[1])
+            yi = c0 * x0.imag
+            acc[0] += yr * yr + yi * yi
+            for k in range(1, m - 1):
+                a = spec[i, k - 1]
+                c = spec[i, k]
+                d = spec[i, k + 1]
+                yr = c0 * c.real + c1 * (a.real + d.real)
+                yi = c0 * c.imag + c1 * (a.imag + d.imag)
+                acc[k] += yr * yr + yi * yi
+            a = spec[i, m - 2]
+            c = spec[i, m - 1]
+            d = spec[i, n - m]  # X[m] = conj(X[n - m])
+            yr = c0 * c.real + c1 * (a.real + d.real)
+            yi = c0 * c.imag + c1 * (a.imag - d.imag)
+            acc[m - 1] += yr * yr + yi * yi
+        return
+    for i in range(rows):
+        for k in range(m):
+            yr = 0.0
+            yi = 0.0
+            if k >= h and k + h < m:
+                for j in range(-h, h + 1):
+                    c = taps[abs(j)]
+                    v = spec[i, k - j]
+                    yr += c * v.real
+                    yi += c * v.imag
+            else:
+                for j in range(-h, h + 1):
+                    c = taps[abs(j)]
+                    idx = k - j
+                    if idx < 0:
+                        v = spec[i, -idx]
+                        yr += c * v.real
+                        yi -= c * v.imag
+                    elif idx >= m:
+                        v = spec[i, n - idx]
+                        yr += c * v.real
+                        yi -= c * v.imag
+                    else:
+                        v = spec[i, idx]
+                        yr += c * v.real
+                        yi += c * v.imag
+            acc[k] += yr * yr + yi * yi
+
+
+def _taps_power_numpy(spec: np.ndarray, taps: np.ndarray, n: int, acc: np.ndarray) -> None:
+    """The same as :func:`_taps_power_loop` with whole-array numpy operations."""
+    m = spec.shape[1]
+    h = taps.size - 1
+    y = taps[0] * spec.astype(np.complex128)
+    if h:
+        left = np.conj(spec[:, h:0:-1])
+        right = np.conj(spec[:, n - (m + np.arange(h))])
+        ext = np.concatenate([left, spec, right], axis=1)
+        for j in range(1, h + 1):
+            y += taps[j] * (ext[:, h - j : h - j + m] + ext[:, h + j : h + j + m])
+    acc += np.einsum("ij,ij->j", y.real, y.real) + np.einsum("ij,ij->j", y.imag, y.imag)
+
+
+if _numba is not None:
+    # FMA contraction only: no flag that lets the compiler assume finite values, so
+    # a NaN or inf sample still reaches the sum and is reported.
+    _taps_power = _numba.njit(nogil=True, cache=True, fastmath={"contract"})(_taps_power_loop)
+else:  # pragma: no cover - numba missing
+    _taps_power = _taps_power_numpy
 
 
 def _power_sum(b: np.ndarray) -> np.ndarray:
-    """Per-bin sums over rows of re**2 and im**2 of rfft(rows), interleaved (re, im).
+    """Per-bin sums over rows of |rfft(rows)|**2, in double precision.
 
     One read pass of the transform and no temporary of its size; einsum sums
     over rows without BLAS.
     """
     spec = scipy.fft.rfft(b, axis=1, workers=1)
     re_im = spec.view(spec.real.dtype)
-    return np.einsum("ij,ij->j", re_im, re_im)
+    col = np.einsum("ij,ij->j", re_im, re_im, dtype=np.float64)
+    return col[0::2] + col[1::2]
+
+
+def _samples_block(
+    view: np.ndarray, b: np.ndarray, w: np.ndarray, detrend: str, trend: tuple | None
+) -> np.ndarray:
+    """Power of one block, detrended and windowed in the time domain (into ``b``)."""
+    if detrend == "none":
+        np.multiply(view, w, out=b)
+        return _power_sum(b)
+    # Mean in double precision and subtracted in double (cast on output), so a
+    # large offset costs no float32 precision.
+    mean64 = view.sum(axis=1, dtype=np.float64) / view.shape[1]
+    np.subtract(view, mean64[:, np.newaxis], out=b, casting="unsafe")
+    if detrend == "linear":
+        t, t_norm = trend
+        slope = np.einsum("ij,j->i", b, t_norm)  # not BLAS: no spinning threads
+        b -= slope[:, np.newaxis] * t
+    b *= w
+    return _power_sum(b)
 
 
 def _accumulate_range(
@@ -247,60 +370,53 @@ def _accumulate_range(
     w: np.ndarray,
     block: int,
     detrend: str,
-    w_spec: np.ndarray | None,
+    taps: np.ndarray | None,
 ) -> np.ndarray:
     """Sum over segments ``begin..end`` of |rfft(window * detrended segment)|**2.
 
     Runs in one thread (FFT ``workers=1``); ranges run in parallel.  With
-    ``detrend="constant"`` and a window of few spectral bins ``w_spec``, the
-    mean is removed after the FFT, ``X - mean * rfft(w)``, which is exact by
-    linearity; a block whose means are large against its fluctuations is
-    redone with the mean removed first, as float32 rounding would show.
+    ``taps`` (a window of few spectral bins) and ``detrend`` "constant" or
+    "none", the raw segments are transformed and windowed along frequency; a
+    block whose means are large against its fluctuations is redone in the
+    time domain with the mean removed first, as float32 rounding would show.
     """
     dtype = segs.dtype
     nperseg = segs.shape[1]
     n_freq = nperseg // 2 + 1
-    buf = np.empty((block, nperseg), dtype=dtype)
-    w_norm = float(_dot(w.astype(np.float64), w.astype(np.float64)))
+    freq_path = taps is not None and detrend in ("constant", "none")
+    # The time-domain buffer is made only when a block needs it.
+    buf = None if freq_path else np.empty((block, nperseg), dtype=dtype)
+    trend = None
     if detrend == "linear":
         t64 = np.arange(nperseg, dtype=np.float64) - (nperseg - 1) / 2.0
-        t_norm = (t64 / _dot(t64, t64)).astype(dtype)
-        t = t64.astype(dtype)
-    # Interleaved (re**2, im**2) sums in double precision; pairs added at the end.
-    acc = np.zeros(2 * n_freq, dtype=np.float64)
+        trend = (t64.astype(dtype), (t64 / _dot(t64, t64)).astype(dtype))
+    acc = np.zeros(n_freq, dtype=np.float64)
+    if freq_path:
+        w_norm = float(_dot(w.astype(np.float64), w.astype(np.float64)))
+        part = np.empty(n_freq, dtype=np.float64)
     for s0 in range(begin, end, block):
         view = segs[s0 : min(s0 + block, end)]
-        b = buf[: view.shape[0]]
-        if detrend == "none":
-            np.multiply(view, w, out=b)
-            acc += _power_sum(b)
+        if not freq_path:
+            acc += _samples_block(view, buf[: view.shape[0]], w, detrend, trend)
             continue
-        # Row sums of contiguous rows are pairwise, so float32 keeps ~1e-7.
-        mean = view.sum(axis=1) / dtype.type(nperseg)
-        if detrend == "constant" and w_spec is not None:
-            np.multiply(view, w, out=b)
-            spec = scipy.fft.rfft(b, axis=1, workers=1)
-            k = w_spec.size
-            spec[:, :k] -= mean[:, np.newaxis] * w_spec
-            re_im = spec.view(spec.real.dtype)
-            col = np.einsum("ij,ij->j", re_im, re_im)
+        spec = scipy.fft.rfft(view, axis=1, workers=1)
+        if detrend == "constant":
+            offset = float(np.max(np.abs(spec[:, 0].real))) / nperseg
+            spec[:, 0] = 0.0
+        part[:] = 0.0
+        _taps_power(spec, taps, nperseg, part)
+        del spec  # freed before the next block's transform is allocated
+        if detrend == "constant":
             # mean square of the windowed, detrended samples of the block (Parseval)
-            total = 2.0 * float(col.sum(dtype=np.float64)) - float(col[0]) - float(col[1])
-            mean_square = total / (nperseg * w_norm * b.shape[0])
-            offset = float(np.max(np.abs(mean)))
-            if offset**2 <= _MAX_OFFSET_RATIO**2 * mean_square:
-                acc += col
+            total = 2.0 * float(part.sum()) - float(part[0]) - float(part[-1])
+            mean_square = total / (nperseg * w_norm * view.shape[0])
+            if not offset**2 <= _MAX_OFFSET_RATIO**2 * mean_square:
+                if buf is None:
+                    buf = np.empty((block, nperseg), dtype=dtype)
+                acc += _samples_block(view, buf[: view.shape[0]], w, detrend, trend)
                 continue
-        # Mean in double precision and subtracted in double (cast on output), so a
-        # large offset costs no float32 precision.
-        mean64 = view.sum(axis=1, dtype=np.float64) / nperseg
-        np.subtract(view, mean64[:, np.newaxis], out=b, casting="unsafe")
-        if detrend == "linear":
-            slope = np.einsum("ij,j->i", b, t_norm)  # not BLAS: no spinning threads
-            b -= slope[:, np.newaxis] * t
-        b *= w
-        acc += _power_sum(b)
-    return acc[0::2] + acc[1::2]
+        acc += part
+    return acc
 
 
 def _accumulate(
@@ -314,7 +430,7 @@ def _accumulate(
     nperseg = w64.size
     dtype = rows.dtype
     w = w64.astype(dtype)
-    w_spec = _window_spectrum(w64, dtype) if detrend == "constant" else None
+    taps = _window_taps(w64) if detrend in ("constant", "none") else None
     block = max(1, min(n_segments, _BLOCK_BYTES // (nperseg * dtype.itemsize)))
     per_row = max(1, min(workers, n_segments // (2 * block)))
     edges = np.linspace(0, n_segments, per_row + 1).astype(int)
@@ -331,11 +447,11 @@ def _accumulate(
     with np.errstate(invalid="ignore", over="ignore"):
         if workers == 1 or len(tasks) == 1:
             for ch, segs, lo, hi in tasks:
-                out[ch] += _accumulate_range(segs, lo, hi, w, block, detrend, w_spec)
+                out[ch] += _accumulate_range(segs, lo, hi, w, block, detrend, taps)
             return out
         with ThreadPoolExecutor(max_workers=min(workers, len(tasks))) as pool:
             futures = [
-                (ch, pool.submit(_accumulate_range, segs, lo, hi, w, block, detrend, w_spec))
+                (ch, pool.submit(_accumulate_range, segs, lo, hi, w, block, detrend, taps))
                 for ch, segs, lo, hi in tasks
             ]
             for ch, fut in futures:
