@@ -19,6 +19,7 @@ def test_run_survives_a_writer_that_dies_mid_run(tmp_path):
     RE = RunEngine({}, context_managers=[])
     with EmbeddedStore(tmp_path, batch_size=10) as st:
         delivered = {"n": 0}
+        catalog = st._writer_factory()
 
         def dying_process(name, doc):
             # the journal sees every document; the catalog writer stops after the 3rd,
@@ -26,7 +27,7 @@ def test_run_survives_a_writer_that_dies_mid_run(tmp_path):
             delivered["n"] += 1
             st.writer.journal(name, doc)
             if delivered["n"] <= 3:
-                st.writer.tiled(name, doc)
+                catalog(name, doc)
 
         RE.subscribe(dying_process)
         (uid,) = RE(bp.count([det], num=6))
@@ -40,6 +41,32 @@ def test_run_survives_a_writer_that_dies_mid_run(tmp_path):
         assert run.metadata["stop"]["exit_status"] == "abort"
         assert "recovered" in run.metadata["stop"]["reason"]
         assert np.asarray(run["primary"].read()["det"]).size == 6
+
+
+def test_a_run_the_catalog_refuses_stays_in_the_journal_and_is_recovered(tmp_path):
+    import time
+    import uuid
+
+    from quietwell import QuietwellError
+
+    with EmbeddedStore(tmp_path) as st:
+        uid = str(uuid.uuid4())
+        now = time.time()
+        st.writer("start", {"uid": uid, "time": now, "plan_name": "broken"})
+        # an event of a descriptor the catalog never saw: the catalog writer fails
+        st.writer("event", {"uid": str(uuid.uuid4()), "descriptor": str(uuid.uuid4()),
+                            "time": now, "seq_num": 1, "data": {}, "timestamps": {},
+                            "filled": {}})
+        with pytest.raises(QuietwellError, match="quietwell recover --data-dir"):
+            st.writer("stop", {"uid": str(uuid.uuid4()), "run_start": uid, "time": now,
+                               "exit_status": "success", "num_events": {}})
+        assert (pathlib.Path(st.journal_dir) / f"{uid}.jsonl").exists()
+        # the next run goes through as usual
+        RE = RunEngine({}, context_managers=[])
+        RE.subscribe(st.writer)
+        (ok,) = RE(bp.count([det], num=2))
+        assert np.asarray(st.client[ok]["primary"].read()["det"]).size == 2
+        assert (pathlib.Path(st.journal_dir) / f"{ok}.done.jsonl").exists()
 
 
 def test_open_catalog_reads_a_closed_store_back(tmp_path):

@@ -56,6 +56,28 @@ from ._trace_file import TraceFile
 __all__ = ["MotionDetector", "HeterodyneDetector", "BackendDataError"]
 
 
+#: Samples per chunk of the clipping count (its scratch buffers stay in the cache).
+_CHUNK = 1 << 16
+
+
+def _count_at_or_beyond(trace: np.ndarray, limit: float) -> int:
+    """Samples with ``|x| >= limit``, counted chunk by chunk into reused buffers.
+
+    No temporary of the record's size: allocating and freeing those per record (32 MB
+    per channel at 2**23 samples) made the next HDF5 write up to 3x slower.
+    """
+    mag = np.empty(min(_CHUNK, trace.size), dtype=trace.dtype)
+    hit = np.empty(mag.size, dtype=bool)
+    total = 0
+    for start in range(0, trace.size, _CHUNK):
+        part = trace[start : start + _CHUNK]
+        m, h = mag[: part.size], hit[: part.size]
+        np.abs(part, out=m)
+        np.greater_equal(m, limit, out=h)
+        total += int(np.count_nonzero(h))
+    return total
+
+
 class BackendDataError(QuietwellError, RuntimeError):
     """A backend returned a record that breaks its protocol (length, dtype, rate)."""
 
@@ -198,7 +220,7 @@ class _TraceDetector(StandardDetector):
         rec = await self._backend.record(n)
         traces = self._validated(rec, n)
         rng = await self.input_range.get_value()
-        clipped = int(sum(int(np.count_nonzero(np.abs(t) >= rng)) for t in traces.values()))
+        clipped = sum(_count_at_or_beyond(t, rng) for t in traces.values())
         tf.append(traces, float(rec.start_time_s), float(rec.sample_rate_hz))
         self._set_last_rate(float(rec.sample_rate_hz))
         self._set_start(float(rec.start_time_s))

@@ -8,22 +8,37 @@ Layout of a data directory::
     DIR/journal/   every document of every run, flushed as it is emitted
 
 Documents go through ``bluesky_tiled_plugins.TiledWriter``. Each catalog write costs
-HTTP round trips (about 0.2 s per 4-channel record with ``batch_size=1``, see
-bench/RESULTS-store.md), so the writer batches ``batch_size`` rows; the journal keeps
-every document on local disk as it is emitted, so a run whose process dies is rebuilt
-with :meth:`EmbeddedStore.recover` and nothing completed is lost. The server lists
-``DIR/raw`` in its readable storage (without it, registration succeeds but every read
-fails).
+HTTP round trips of tens of milliseconds (about 0.2 s per 4-channel record with
+``batch_size=1``, see bench/RESULTS-store.md), so
+
+* the server runs in its own process (:mod:`quietwell.store._serve`), on the other
+  core and with its own interpreter lock;
+* the writer batches ``batch_size`` rows and runs in a worker thread: the acquisition
+  only journals each document and queues it;
+* the journal keeps every document on local disk as it is emitted, so a run whose
+  process dies is rebuilt with :meth:`EmbeddedStore.recover` and nothing completed is
+  lost;
+* at each stop document the acquisition waits until the catalog holds the whole run,
+  so a run is readable from the catalog as soon as the plan returns.
+
+The server lists ``DIR/raw`` in its readable storage (without it, registration succeeds
+but every read fails).
 """
 
 from __future__ import annotations
 
+import atexit
+import json
+import os
+import queue
+import subprocess
+import sys
 import threading
 from pathlib import Path
 from typing import Any
 
-from .._errors import InputError
-from ._journal import Journal
+from .._errors import InputError, QuietwellError
+from ._journal import Journal, _jsonable
 
 __all__ = ["EmbeddedStore", "open_catalog"]
 
@@ -40,7 +55,7 @@ class EmbeddedStore:
             run = store.client[uid]
     """
 
-    def __init__(self, data_dir: str | Path, *, batch_size: int = 10) -> None:
+    def __init__(self, data_dir: str | Path, *, batch_size: int = 100) -> None:
         self.data_dir = Path(data_dir).expanduser().resolve()
         self.raw_dir = self.data_dir / "raw"
         self.catalog_dir = self.data_dir / "catalog"
@@ -69,16 +84,16 @@ class EmbeddedStore:
                              "choose a writable directory") from None
         from bluesky_tiled_plugins import TiledWriter
         from tiled.client import from_uri
-        from tiled.server import SimpleTiledServer
 
-        self._server = SimpleTiledServer(directory=self.catalog_dir,
-                                         readable_storage=[self.raw_dir])
-        # close before the interpreter joins non-daemon threads, or it would hang
-        threading._register_atexit(self.close)  # type: ignore[attr-defined]
-        self.client = from_uri(self._server.uri)
+        self._server = _CatalogProcess(self.catalog_dir, self.raw_dir, self.backup_dir,
+                                       self.batch_size)
+        self._uri = self._server.uri
+        atexit.register(self.close)
+        self.client = from_uri(self._uri)
+        # In this process only for recovery from the journal.
         self._writer_factory = lambda: TiledWriter(self.client, batch_size=self.batch_size,
                                                    backup_directory=str(self.backup_dir))
-        self.writer = _JournaledWriter(Journal(self.journal_dir), self._writer_factory())
+        self.writer = _StoreWriter(Journal(self.journal_dir), self._server, self.data_dir)
         return self
 
     def recover(self) -> list[str]:
@@ -99,13 +114,14 @@ class EmbeddedStore:
         """The server's URI (with its API key) while it runs."""
         if self._server is None:
             raise RuntimeError("the store is not open")
-        return self._server.uri
+        return self._uri
 
     def close(self) -> None:
-        """Stop the server (idempotent)."""
+        """Finish the catalog writes and stop the server (idempotent)."""
         server, self._server = self._server, None
-        if server is not None:
-            server.close()
+        if server is None:
+            return
+        server.stop()
 
     def __enter__(self) -> EmbeddedStore:
         return self.open()
@@ -114,15 +130,111 @@ class EmbeddedStore:
         self.close()
 
 
-class _JournaledWriter:
-    """Journal first (local, flushed), then the catalog writer."""
+#: Seconds to wait for the catalog process to start / to finish and exit.
+_START_TIMEOUT_S = 120.0
+_STOP_TIMEOUT_S = 120.0
 
-    def __init__(self, journal: Journal, writer: Any) -> None:
-        self.journal, self.tiled = journal, writer
+
+class _CatalogProcess:
+    """The child process of :mod:`quietwell.store._serve`: server, writer, replies."""
+
+    def __init__(self, catalog_dir: Path, raw_dir: Path, backup_dir: Path, batch_size: int):
+        self.log_path = catalog_dir / "server.log"
+        with open(self.log_path, "ab") as log:
+            self.proc = subprocess.Popen(
+                [sys.executable, "-m", "quietwell.store._serve", str(catalog_dir),
+                 str(raw_dir), str(backup_dir), str(batch_size)],
+                stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=log, text=True,
+                env={**os.environ, "PYTHONUNBUFFERED": "1"},
+            )
+        self._replies: queue.Queue = queue.Queue()
+        self._reader = threading.Thread(target=self._read, name="quietwell-catalog-replies",
+                                        daemon=True)
+        self._reader.start()
+        self.uri = self._expect("uri", _START_TIMEOUT_S)
+
+    def _read(self) -> None:
+        for line in self.proc.stdout:
+            self._replies.put(line.rstrip("\n"))
+        self._replies.put(None)  # the process ended
+
+    def _expect(self, word: str, timeout: float | None) -> str:
+        try:
+            line = self._replies.get(timeout=timeout)
+        except queue.Empty:
+            line = None
+        if line is None or not line.startswith(word + " "):
+            self.stop()
+            tail = self.log_path.read_text(errors="replace").strip().splitlines()[-1:]
+            raise QuietwellError(
+                f"the catalog process ended or did not answer ({' '.join(tail) or 'no output'}); "
+                f"see {self.log_path}"
+            )
+        return line[len(word) + 1 :]
+
+    def send(self, line: str) -> None:
+        try:
+            self.proc.stdin.write(line)
+        except (BrokenPipeError, ValueError):
+            raise QuietwellError(f"the catalog process has ended; see {self.log_path}") from None
+
+    def wait_for_run(self, uid: str) -> str | None:
+        """Block until the process has written run ``uid``; None, or why it failed."""
+        try:
+            self.proc.stdin.flush()
+        except (BrokenPipeError, ValueError):
+            raise QuietwellError(f"the catalog process has ended; see {self.log_path}") from None
+        while True:
+            line = self._replies.get()
+            if line is None:
+                raise QuietwellError(f"the catalog process ended while writing run {uid}; "
+                                     f"see {self.log_path}")
+            word, _, rest = line.partition(" ")
+            got, _, reason = rest.partition(" ")
+            if got == uid:
+                return None if word == "done" else reason or "unknown error"
+
+    def stop(self) -> None:
+        try:
+            self.proc.stdin.close()
+        except OSError:
+            pass
+        try:
+            self.proc.wait(timeout=_STOP_TIMEOUT_S)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+            self.proc.wait()
+
+
+class _StoreWriter:
+    """Journal first, then the document to the catalog process; wait at each stop.
+
+    The acquisition pays for one JSON line to the journal and one to a pipe per
+    document. At a stop document it waits until the catalog process has written the
+    whole run; if the catalog could not take the run, its journal is left unfinished
+    (so :meth:`EmbeddedStore.recover` rebuilds it) and the stop raises a
+    :class:`QuietwellError` saying so.
+    """
+
+    def __init__(self, journal: Journal, catalog: _CatalogProcess, data_dir: Path) -> None:
+        self.journal, self._catalog, self._data_dir = journal, catalog, data_dir
 
     def __call__(self, name: str, doc: dict) -> None:
-        self.journal(name, doc)
-        self.tiled(name, doc)
+        uid = self.journal(name, doc, finish=False)
+        self._catalog.send(json.dumps([name, doc, uid], default=_jsonable) + "\n")
+        if name == "stop":
+            uid = doc.get("run_start")
+            error = self._catalog.wait_for_run(uid)
+            if error is not None:
+                raise QuietwellError(
+                    f"the catalog could not take run {uid} ({error}); every document is in "
+                    f"the journal {self.journal.directory}: rebuild the run with `quietwell "
+                    f"recover --data-dir {self._data_dir}`"
+                )
+            self.journal.finish(uid)
+
+    def close(self) -> None:
+        """Nothing is buffered in this process (the journal flushes every line)."""
 
 
 _OPEN: dict[Path, EmbeddedStore] = {}

@@ -36,20 +36,34 @@ class Journal:
         self.fsync = fsync
         self._files: dict[str, Any] = {}
 
-    def __call__(self, name: str, doc: dict) -> None:
+    def __call__(self, name: str, doc: dict, *, finish: bool = True) -> str | None:
+        """Append one document; return the uid of the run whose journal holds it.
+
+        With ``finish=False`` a stop document closes the run's file but leaves it named
+        unfinished until :meth:`finish` (the store does so once the catalog has the run).
+        """
         if name == "start":
-            f = open(self.directory / f"{doc['uid']}.jsonl", "a", encoding="utf-8")  # noqa: SIM115
-            self._files[doc["uid"]] = f
+            uid = doc["uid"]
+            f = open(self.directory / f"{uid}.jsonl", "a", encoding="utf-8")  # noqa: SIM115
+            self._files[uid] = f
             self._write(f, name, doc)
-            return
-        uid = doc.get("run_start") if name in ("descriptor", "stop", "stream_resource") else None
-        targets = [self._files[uid]] if uid in self._files else list(self._files.values())
-        for f in targets[-1:]:
-            self._write(f, name, doc)
-        if name == "stop" and uid in self._files:
+            return uid
+        own = doc.get("run_start") if name in ("descriptor", "stop", "stream_resource") else None
+        uid = own if own in self._files else next(reversed(self._files), None)
+        if uid is None:
+            return None
+        self._write(self._files[uid], name, doc)
+        if name == "stop" and uid == own:
             self._files.pop(uid).close()
-            done = self.directory / f"{uid}.jsonl"
-            done.rename(done.with_suffix(".done.jsonl"))
+            if finish:
+                self.finish(uid)
+        return uid
+
+    def finish(self, uid: str) -> None:
+        """Mark the journal of run ``uid`` complete (``<uid>.done.jsonl``)."""
+        path = self.directory / f"{uid}.jsonl"
+        if path.exists():
+            path.rename(path.with_suffix(".done.jsonl"))
 
     def _write(self, f, name: str, doc: dict) -> None:
         f.write(json.dumps([name, doc], default=_jsonable) + "\n")

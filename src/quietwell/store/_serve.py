@@ -1,0 +1,71 @@
+"""The catalog process of the embedded store: ``python -m quietwell.store._serve``.
+
+Arguments: the catalog directory, the raw-trace directory (listed in the server's
+readable storage), the writer's backup directory and its batch size.
+
+The process runs the tiled server and the ``TiledWriter`` that fills it. The parent
+sends the documents of its runs on standard input, one JSON line ``[name, doc, uid]``
+each, in the order they were emitted (the same documents it journals). On standard
+output the process writes, each on its own line,
+
+* ``uri <URI>`` once, when the server is up (the URI carries the API key);
+* ``done <uid>`` after the stop document of a run is written, or
+  ``failed <uid> <reason>`` if the writer could not take some document of it (the
+  rest of that run is skipped; the parent's journal still holds all of it).
+
+Everything the server itself prints goes to standard error (the parent sends it to
+``DIR/catalog/server.log``). End of file on standard input ends the process, after the
+queued documents are written: the parent closes the pipe to stop it, and a parent that
+dies closes it too, so no server outlives its owner.
+
+Its own process gives the catalog its own interpreter lock and the second core: the
+writer's and the server's work no longer compete with the acquisition for the lock.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+
+
+def main(argv: list[str]) -> int:
+    if len(argv) != 4:
+        print("usage: python -m quietwell.store._serve CATALOG_DIR RAW_DIR BACKUP_DIR BATCH",
+              file=sys.stderr)
+        return 2
+    catalog_dir, raw_dir, backup_dir, batch = argv
+    # Replies go to the original stdout; the server's own output to stderr.
+    replies = os.fdopen(os.dup(1), "w")
+    os.dup2(2, 1)
+    # The raw files are written in single-writer-multiple-reader mode by another
+    # process while the server may read them.
+    os.environ["TILED_HDF5_SWMR_DEFAULT"] = "1"
+    from bluesky_tiled_plugins import TiledWriter
+    from tiled.client import from_uri
+    from tiled.server import SimpleTiledServer
+
+    def reply(text: str) -> None:
+        replies.write(text + "\n")
+        replies.flush()
+
+    with SimpleTiledServer(directory=catalog_dir, readable_storage=[raw_dir]) as server:
+        writer = TiledWriter(from_uri(server.uri), batch_size=int(batch),
+                             backup_directory=backup_dir)
+        reply(f"uri {server.uri}")
+        failed: dict[str, str] = {}
+        for line in sys.stdin:
+            name, doc, uid = json.loads(line)
+            if uid not in failed:
+                try:
+                    writer(name, doc)
+                except Exception as exc:  # reported to the parent at the run's stop
+                    failed[uid] = " ".join(repr(exc).split())
+            if name == "stop":
+                reason = failed.pop(uid, None)
+                reply(f"done {uid}" if reason is None else f"failed {uid} {reason}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))
