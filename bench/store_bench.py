@@ -11,8 +11,13 @@ plugin
     ``quietwell.devices.MotionDetector`` (4 float32 channels) into a
     ``quietwell.store.EmbeddedStore``: event documents, one external SWMR HDF5 file,
     stream_resource / stream_datum registration through the store's ``TiledWriter``
-    (with the store's batch size and journal).
+    (journal in this process, the writer and the tiled server in the store's catalog
+    process, with the store's batch size).
     The backend returns precomputed random arrays, so generating them costs nothing.
+acquisition alone (in ``per_record``)
+    the same RunEngine and detector (still writing its HDF5 file) with a subscriber
+    that stores nothing, so that the cost of storing can be told from the cost of
+    acquiring.
 h5py
     the same arrays written with h5py alone, in the same layout: one file, one
     ``(records, samples)`` float32 dataset per channel with ``(1, samples)`` chunks,
@@ -22,8 +27,10 @@ h5py
 Per-record cost is measured honestly: each path runs N and 2N records, and
 ``per record = (T(2N) - T(N)) / N``; the rest, ``T(N) - N * per record``, is the fixed
 cost of a run (open_run, stage, file creation, unstage, close_run, for the plugin).
-Starting the tiled server is timed separately and is in neither figure.  Each
-timing is the minimum over ``--repeat`` interleaved runs.
+Starting the tiled server is timed separately and is in neither figure.  In
+``per_record`` every timed run starts after ``os.sync()`` (no dirty pages left by the
+previous one) and each figure is the median over ``--repeat`` interleaved rounds;
+elsewhere each timing is the minimum over ``--repeat`` interleaved runs.
 
 The figures are printed as a table and written to ``bench/RESULTS-store.md``.
 """
@@ -33,16 +40,12 @@ from __future__ import annotations
 import argparse
 import cProfile
 import io
-import math
 import os
 import platform
 import pstats
-import queue
 import shutil
-import subprocess
 import sys
 import tempfile
-import threading
 import time
 from collections import defaultdict
 from collections.abc import Callable
@@ -245,24 +248,6 @@ class PerRecord:
         return self.t_n - self.n * self.per_record
 
 
-def compare(plugin: PluginPath, h5dir: Path, n: int, repeat: int) -> tuple[PerRecord, PerRecord]:
-    """Interleaved N / 2N runs of both paths; minimum wall time of each."""
-    best = defaultdict(lambda: math.inf)
-    sets = plugin.backend.sets
-    samples = plugin.samples
-    for _ in range(repeat):
-        for k in (n, 2 * n):
-            t, _uid = plugin.run(k)
-            plugin.remove_files()
-            best[("plugin", k)] = min(best[("plugin", k)], t)
-            t = h5py_run(h5dir / "baseline.h5", k, sets, samples)
-            best[("h5py", k)] = min(best[("h5py", k)], t)
-    return (
-        PerRecord(best[("plugin", n)], best[("plugin", 2 * n)], n),
-        PerRecord(best[("h5py", n)], best[("h5py", 2 * n)], n),
-    )
-
-
 def check_round_trip(plugin: PluginPath) -> None:
     """The plugin path really stores the records: read two back through tiled."""
     _t, uid = plugin.run(2)
@@ -315,45 +300,44 @@ def _null_writer(name, doc) -> None:
     """A subscriber that stores nothing (the acquisition alone)."""
 
 
-def section_per_record(cfg: Config, out: dict) -> list[Row]:
-    """The goal at the setup's record length (2**18 samples per channel, 4 channels).
+def _three_paths(cfg: Config, out: dict, key: str, samples: int, n: int,
+                 label: str) -> list[Row]:
+    """Plugin with the store, the acquisition alone, and bare h5py, interleaved.
 
-    Three paths, interleaved: the plugin with the store, the same RunEngine and
-    detector with a subscriber that stores nothing (the acquisition alone, still
-    writing its HDF5 file), and bare h5py. The cost of *storing* a record through the
-    plugin is the HDF5 append inside the detector plus what subscribing the store
+    The acquisition alone is the same RunEngine and detector (still writing its HDF5
+    file) with a subscriber that stores nothing. The cost of *storing* a record through
+    the plugin is the HDF5 append inside the detector plus what subscribing the store
     adds to the run: ``append + (plugin - acquisition alone)``. The all-in figure
     (RunEngine, detector and store together) is shown beside it.
     """
-    store, t_start = open_store(cfg.work / "store-a")
-    n = cfg.n_records
+    store, t_start = open_store(cfg.work / f"store-{key}")
     try:
-        plugin = PluginPath(store, SAMPLES)
+        plugin = PluginPath(store, samples)
         check_round_trip(plugin)
-        bare = PluginPath(store, SAMPLES, writer=_null_writer)
+        bare = PluginPath(store, samples, writer=_null_writer)
         reps: list[dict] = []
         for _ in range(cfg.repeat):
             got: dict = {}
             for k in (n, 2 * n):
-                for label, path in (("plugin", plugin), ("bare", bare)):
+                for name, path in (("plugin", plugin), ("bare", bare)):
                     os.sync()  # every timed run starts without dirty pages
                     with _AppendTimer() as timer:
                         t, _uid = path.run(k)
                     path.remove_files()
-                    got[(label, k)] = t
-                    got[(label + ":append", k)] = timer.total
+                    got[(name, k)] = t
+                    got[(name + ":append", k)] = timer.total
                 os.sync()
                 got[("h5py", k)] = h5py_run(cfg.work / "baseline.h5", k, plugin.backend.sets,
-                                            SAMPLES)
+                                            samples)
             reps.append(got)
     finally:
         t0 = time.perf_counter()
         store.close()
         t_close = time.perf_counter() - t0
 
-    def med(label: str) -> PerRecord:
-        # per repetition, T(N) and T(2N) of the same interleaved round; then the median
-        pairs = sorted(((r[(label, 2 * n)] - r[(label, n)]) / n, r[(label, n)]) for r in reps)
+    def med(name: str) -> PerRecord:
+        # per round, T(N) and T(2N) of the same interleaved round; then the median
+        pairs = sorted(((r[(name, 2 * n)] - r[(name, n)]) / n, r[(name, n)]) for r in reps)
         per, t_n = pairs[len(pairs) // 2]
         return PerRecord(t_n, t_n + n * per, n)
 
@@ -362,12 +346,13 @@ def section_per_record(cfg: Config, out: dict) -> list[Row]:
     storing = append + max(0.0, p.per_record - a.per_record)
     ratio = storing / h.per_record
     all_in = p.per_record / h.per_record
-    size = len(CHANNELS) * SAMPLES * 4
-    out["main"] = dict(p=p, h=h, a=a, ratio=ratio, all_in=all_in, storing=storing,
-                       append=append, t_start=t_start, t_close=t_close, size=size)
+    size = len(CHANNELS) * samples * 4
+    out[key] = dict(p=p, h=h, a=a, ratio=ratio, all_in=all_in, storing=storing,
+                    append=append, t_start=t_start, t_close=t_close, size=size)
     return [
-        Row("record size (4 ch x 2^18 float32, the profiles' record_length)", _mb(size)),
-        Row(f"(a) plugin with the store, per record (runs of {n} and {2 * n}, median of {cfg.repeat})", _ms(p.per_record)),
+        Row(f"record size ({label})", _mb(size)),
+        Row(f"(a) plugin with the store, per record (runs of {n} and {2 * n}, "
+            f"median of {cfg.repeat})", _ms(p.per_record)),
         Row("(b) the same acquisition storing nothing, per record", _ms(a.per_record)),
         Row("(c) HDF5 append inside the detector, per record", _ms(append)),
         Row("(d) h5py alone, per record", _ms(h.per_record)),
@@ -376,52 +361,30 @@ def section_per_record(cfg: Config, out: dict) -> list[Row]:
             "PASS" if ratio <= GOAL else "FAIL"),
         Row("(a) / (d): all in (RunEngine + detector + store) / h5py", f"{all_in:.2f}x",
             "(information)"),
-        Row("(b) - (c): RunEngine + detector per record, no storage", _ms(a.per_record - append),
-            "(information)"),
+        Row("(b) - (c): RunEngine + detector per record, no storage",
+            _ms(a.per_record - append), "(information)"),
         Row("plugin fixed cost per run (open/stage/close, catalog flush at stop)", _ms(p.fixed)),
         Row("h5py fixed cost per run (file create/close)", _ms(h.fixed)),
-        Row("server start / stop (in neither figure)", f"{_ms(t_start)} / {_ms(t_close)}"),
+        Row("catalog process start / stop (in neither figure)",
+            f"{_ms(t_start)} / {_ms(t_close)}"),
     ]
+
+
+def section_per_record(cfg: Config, out: dict) -> list[Row]:
+    """The goal at the setup's record length (2**18 samples per channel, 4 channels)."""
+    return _three_paths(cfg, out, "main", SAMPLES, cfg.n_records,
+                        "4 ch x 2^18 float32, the profiles' record_length")
 
 
 def section_big_record(cfg: Config, out: dict) -> list[Row]:
-    """For information: the same comparison at 2**20 samples per channel."""
-    store, _t = open_store(cfg.work / "store-b")
-    try:
-        plugin = PluginPath(store, BIG_SAMPLES)
-        p, h = compare(plugin, cfg.work, cfg.n_big, cfg.repeat)
-    finally:
-        store.close()
-    size = len(CHANNELS) * BIG_SAMPLES * 4
-    ratio = p.per_record / h.per_record
-    out["big"] = dict(p=p, h=h, ratio=ratio, size=size)
-    return [
-        Row("record size (4 ch x 2^20 float32)", _mb(size)),
-        Row("plugin, per record at 2^20", _ms(p.per_record)),
-        Row("h5py, per record at 2^20", _ms(h.per_record)),
-        Row("plugin / h5py per record at 2^20", f"{ratio:.2f}x", "(information)"),
-        Row("plugin fixed cost per run at 2^20", _ms(p.fixed)),
-    ]
+    """The same comparison at 2**20 samples per channel."""
+    return _three_paths(cfg, out, "big", BIG_SAMPLES, cfg.n_big * 4, "4 ch x 2^20 float32")
 
 
 def section_fast_record(cfg: Config, out: dict) -> list[Row]:
-    """The goal at the setup's own scale: one 2**23-sample record (0.84 s at 10 MS/s)."""
-    store, _t = open_store(cfg.work / "store-c")
-    try:
-        plugin = PluginPath(store, FAST_SAMPLES)
-        p, h = compare(plugin, cfg.work, max(2, cfg.n_big // 2), cfg.repeat)
-    finally:
-        store.close()
-    size = len(CHANNELS) * FAST_SAMPLES * 4
-    ratio = p.per_record / h.per_record
-    out["fast"] = dict(p=p, h=h, ratio=ratio, size=size)
-    return [
-        Row("record size (4 ch x 2^23 float32, 0.84 s at 10 MS/s)", _mb(size)),
-        Row("plugin, per record at 2^23", _ms(p.per_record)),
-        Row("h5py, per record at 2^23", _ms(h.per_record)),
-        Row("plugin / h5py per record at 2^23", f"{ratio:.2f}x", f"<= {GOAL}x",
-            "PASS" if ratio <= GOAL else "FAIL"),
-    ]
+    """The same at the detector's fastest scale: 2**23 samples (0.84 s at 10 MS/s)."""
+    return _three_paths(cfg, out, "fast", FAST_SAMPLES, max(2, cfg.n_big // 2),
+                        "4 ch x 2^23 float32, 0.84 s at 10 MS/s")
 
 
 class _TimedWriter:
@@ -521,173 +484,11 @@ def section_where_time_goes(cfg: Config, out: dict) -> list[Row]:
     ]
 
 
-# -------------------------------------------------------- variants (proposals)
-
-
-class ThreadedWriter:
-    """Document callback run in one worker thread, in order, with ``drain()``.
-
-    Bench-only model of proposal P1: the RunEngine hands documents to a queue and goes
-    on; the writer thread does the HTTP.  ``drain()`` waits until every document is
-    written, and re-raises the first error the writer met.
-    """
-
-    def __init__(self, target: Callable) -> None:
-        self._target = target
-        self._queue: queue.Queue = queue.Queue()
-        self._error: BaseException | None = None
-        self._thread = threading.Thread(target=self._work, daemon=True)
-        self._thread.start()
-
-    def _work(self) -> None:
-        while True:
-            item = self._queue.get()
-            try:
-                if item is None:
-                    return
-                if self._error is None:
-                    self._target(*item)
-            except BaseException as exc:  # kept and re-raised by drain()
-                self._error = exc
-            finally:
-                self._queue.task_done()
-
-    def __call__(self, name, doc) -> None:
-        if self._error is not None:
-            raise RuntimeError(f"store writer failed earlier: {self._error!r}")
-        self._queue.put((name, doc))
-
-    def drain(self) -> None:
-        self._queue.join()
-        if self._error is not None:
-            raise RuntimeError(f"store writer failed: {self._error!r}")
-
-    def close(self) -> None:
-        self._queue.put(None)
-        self._thread.join()
-
-
-_SERVER_SCRIPT = r"""
-import sys, time
-from tiled.server import SimpleTiledServer
-with SimpleTiledServer(directory=sys.argv[1], readable_storage=[sys.argv[2]]) as s:
-    print(s.uri, flush=True)
-    sys.stdin.read()
-"""
-
-
-class ProcessStore:
-    """Bench-only model of proposal P2: the same tiled server in a child process.
-
-    Same directories and writer settings as ``EmbeddedStore``; only the server runs in
-    its own interpreter (its own GIL, the second core).
-    """
-
-    def __init__(self, data_dir: Path) -> None:
-        from bluesky_tiled_plugins import TiledWriter
-        from tiled.client import from_uri
-
-        self.data_dir = data_dir
-        self.raw_dir = data_dir / "raw"
-        self.backup_dir = data_dir / "backup"
-        for d in ("raw", "catalog", "backup"):
-            (data_dir / d).mkdir(parents=True, exist_ok=True)
-        self._proc = subprocess.Popen(
-            [sys.executable, "-c", _SERVER_SCRIPT, str(data_dir / "catalog"), str(self.raw_dir)],
-            stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
-        )
-        uri = self._proc.stdout.readline().strip()
-        if not uri.startswith("http"):
-            self._proc.kill()
-            raise SystemExit(f"child tiled server did not start (printed {uri!r})")
-        self.client = from_uri(uri)
-        self.writer = TiledWriter(self.client, batch_size=1,
-                                  backup_directory=str(self.backup_dir))
-
-    def close(self) -> None:
-        self._proc.stdin.close()
-        try:
-            self._proc.wait(timeout=30)
-        except subprocess.TimeoutExpired:
-            self._proc.kill()
-            self._proc.wait()
-
-
-class _BatchedStore:
-    """The in-process store of ``EmbeddedStore`` with a second writer of a larger batch."""
-
-    def __init__(self, store, batch_size: int) -> None:
-        from bluesky_tiled_plugins import TiledWriter
-
-        self.raw_dir = store.raw_dir
-        self.client = store.client
-        self.writer = TiledWriter(store.client, batch_size=batch_size,
-                                  backup_directory=str(store.backup_dir))
-
-
-def _variant(cfg: Config, make_store: Callable[[], object], threaded: bool,
-             batch_size: int = 1) -> tuple[PerRecord, PerRecord]:
-    store = make_store()
-    target = store if batch_size == 1 else _BatchedStore(store, batch_size)
-    tw = ThreadedWriter(target.writer) if threaded else None
-    try:
-        plugin = PluginPath(target, SAMPLES, writer=tw)
-        check_round_trip(plugin)
-        return compare(plugin, cfg.work, cfg.n_records, cfg.repeat)
-    finally:
-        if tw is not None:
-            tw.close()
-        store.close()
-
-
-VARIANT_BATCH = 10
-
-
-def section_variants(cfg: Config, out: dict) -> list[Row]:
-    """Measured models of store-side proposals (nothing in src changes).
-
-    P1 runs the unchanged TiledWriter in one worker thread (documents in order, the
-    run waits for the queue to drain before its time stops). P2 runs the same tiled
-    server in a child process. P3 is TiledWriter(batch_size=10): for comparison
-    only, it gives up the one-record loss window the store promises.
-    """
-    k = [0]
-
-    def in_process():
-        k[0] += 1
-        return open_store(cfg.work / f"store-v{k[0]}")[0]
-
-    def child_process():
-        k[0] += 1
-        return ProcessStore(cfg.work / f"store-v{k[0]}")
-
-    results = {
-        "P1 writer in a worker thread": _variant(cfg, in_process, threaded=True),
-        "P2 tiled server in a child process": _variant(cfg, child_process, threaded=False),
-        "P1+P2": _variant(cfg, child_process, threaded=True),
-        f"P3 batch_size={VARIANT_BATCH} (info)": _variant(
-            cfg, in_process, threaded=False, batch_size=VARIANT_BATCH),
-        f"P1+P2+P3 batch_size={VARIANT_BATCH} (info)": _variant(
-            cfg, child_process, threaded=True, batch_size=VARIANT_BATCH),
-    }
-    rows = []
-    for label, (p, h) in results.items():
-        ratio = p.per_record / h.per_record
-        rows.append(Row(f"{label}: plugin / h5py", f"{ratio:.2f}x", f"<= {GOAL}x",
-                        "PASS" if ratio <= GOAL else "FAIL"))
-        rows.append(Row("  plugin / h5py per record; plugin fixed",
-                        f"{_ms(p.per_record)} / {_ms(h.per_record)}; {_ms(p.fixed)}"))
-    out["variants"] = {k: dict(p=p, h=h, ratio=p.per_record / h.per_record)
-                       for k, (p, h) in results.items()}
-    return rows
-
-
 SECTIONS: dict[str, Callable[[Config, dict], list[Row]]] = {
     "per_record": section_per_record,
     "big_record": section_big_record,
     "fast_record": section_fast_record,
     "where_time_goes": section_where_time_goes,
-    "variants": section_variants,
 }
 
 
