@@ -43,6 +43,7 @@ import io
 import os
 import platform
 import pstats
+import re
 import shutil
 import sys
 import tempfile
@@ -545,7 +546,12 @@ def write_results(path: Path, cfg: Config, rows_by_section, out: dict, elapsed: 
         head += ["## cProfile of one plugin run (RunEngine thread, cumulative; "
                  "the tiled server thread is not in it)", "",
                  "```", out["profile_text"].strip(), "```", ""]
-    path.write_text("\n".join(head))
+    text = "\n".join(head)
+    # No paths of this machine in the results: packages and this checkout, relative.
+    text = re.sub(r"\S*/site-packages/", "", text)
+    text = re.sub(r"/\S*/lib/python[0-9.]+/", "<stdlib>/", text)
+    text = text.replace(str(ROOT) + "/", "").replace(str(cfg.work), "<a temporary directory>")
+    path.write_text(text)
 
 
 def main(argv: list[str] | None = None) -> int:
