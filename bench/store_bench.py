@@ -177,9 +177,6 @@ class PluginPath:
 
         t0 = time.perf_counter()
         (uid,) = self.RE(bp.count([self.det], num=n))
-        drain = getattr(self.writer, "drain", None)
-        if drain is not None:
-            drain()  # a threaded writer has finished only when its queue is empty
         return time.perf_counter() - t0, uid
 
     def remove_files(self) -> None:
@@ -403,44 +400,19 @@ class _TimedWriter:
         self.count[name] += 1
 
 
-def _count_http(client) -> tuple[dict, Callable[[], None]]:
-    """Count the client's HTTP requests by method (an httpx event hook, removed after)."""
-    counts: dict[str, int] = defaultdict(int)
-    http = client.context.http_client
-
-    def hook(request):
-        counts[request.method] += 1
-
-    http.event_hooks["request"].append(hook)
-    return counts, lambda: http.event_hooks["request"].remove(hook)
-
-
 def section_where_time_goes(cfg: Config, out: dict) -> list[Row]:
     """Break the plugin's per-record time down (writer per document, HDF5, the rest)."""
-    from quietwell.devices import _trace_file
-
     store, _t = open_store(cfg.work / "store-c")
     n = cfg.n_records
     timed = _TimedWriter(store.writer)
-    append_time = [0.0]
-    original = _trace_file.TraceFile.append
-
-    def timed_append(self, *args, **kwargs):
-        t0 = time.perf_counter()
-        original(self, *args, **kwargs)
-        append_time[0] += time.perf_counter() - t0
-
-    _trace_file.TraceFile.append = timed_append
     try:
         plugin = PluginPath(store, SAMPLES, writer=timed)
         plugin.run(2)  # warm
         timed.spent.clear()
         timed.count.clear()
-        append_time[0] = 0.0
-        counts, unhook = _count_http(store.client)
-        total, _uid = plugin.run(n)
-        unhook()
-        spent, count, appended = dict(timed.spent), dict(timed.count), append_time[0]
+        with _AppendTimer() as appends:
+            total, _uid = plugin.run(n)
+        spent, count, appended = dict(timed.spent), dict(timed.count), appends.total
         plugin.remove_files()
         # The RunEngine runs its plan in its own thread: profile that thread.
         from bluesky.run_engine import call_in_bluesky_event_loop
@@ -458,7 +430,6 @@ def section_where_time_goes(cfg: Config, out: dict) -> list[Row]:
         call_in_bluesky_event_loop(_off())
         plugin.remove_files()
     finally:
-        _trace_file.TraceFile.append = original
         store.close()
     text = io.StringIO()
     pstats.Stats(prof, stream=text).sort_stats("cumulative").print_stats(30)
@@ -467,21 +438,17 @@ def section_where_time_goes(cfg: Config, out: dict) -> list[Row]:
     writer_total = sum(spent.values())
     steady = spent["event"] + spent["stream_datum"]
     rest = total - writer_total - appended
-    out["breakdown"] = dict(
-        total=total, writer=spent, counts=count, append=appended, rest=rest,
-        http=dict(counts), n=n,
-    )
-    n_http = sum(counts.values())
+    out["breakdown"] = dict(total=total, writer=spent, counts=count, append=appended, rest=rest,
+                            n=n)
     return [
         Row(f"run of {n} records, all in", _ms(total)),
-        Row("  writer: event documents, per record", _ms(per.get("event", 0.0))),
-        Row("  writer: stream_datum (4 per record), per record", _ms(per.get("stream_datum", 0.0))),
-        Row("  writer: start/descriptor/stream_resource/stop, per run",
+        Row("  store (journal + pipe): event documents, per record", _ms(per.get("event", 0.0))),
+        Row("  store (journal + pipe): stream_datum (4 per record), per record",
+            _ms(per.get("stream_datum", 0.0))),
+        Row("  store: start/descriptor/stream_resource/stop (waits for the catalog), per run",
             _ms(writer_total - steady)),
         Row("  HDF5 append+flush inside the detector, per record", _ms(appended / n)),
         Row("  RunEngine, ophyd-async, checks (the rest), per record", _ms(rest / n)),
-        Row("  HTTP requests of the writer per run / per record",
-            f"{n_http} / {n_http / n:.1f}"),
     ]
 
 
@@ -535,16 +502,15 @@ def write_results(path: Path, cfg: Config, rows_by_section, out: dict, elapsed: 
     ]
     if "breakdown" in out:
         b = out["breakdown"]
-        head += ["## Writer documents and HTTP requests (one run of "
-                 f"{b['n']} records)", "",
+        head += ["## Store documents in the acquisition (one run of "
+                 f"{b['n']} records; the catalog's HTTP requests are in its own process)", "",
                  "| document | count | time |", "|---|---|---|"]
         for name, t in b["writer"].items():
             head.append(f"| {name} | {b['counts'][name]} | {_ms(t)} |")
-        head += ["", "HTTP requests by method: "
-                 + ", ".join(f"{k} {v}" for k, v in sorted(b["http"].items())), ""]
+        head.append("")
     if "profile_text" in out:
         head += ["## cProfile of one plugin run (RunEngine thread, cumulative; "
-                 "the tiled server thread is not in it)", "",
+                 "the catalog process is not in it)", "",
                  "```", out["profile_text"].strip(), "```", ""]
     text = "\n".join(head)
     # No paths of this machine in the results: packages and this checkout, relative.

@@ -13,8 +13,8 @@ HTTP round trips of tens of milliseconds (about 0.2 s per 4-channel record with
 
 * the server runs in its own process (:mod:`quietwell.store._serve`), on the other
   core and with its own interpreter lock;
-* the writer batches ``batch_size`` rows and runs in a worker thread: the acquisition
-  only journals each document and queues it;
+* the writer runs there too and batches ``batch_size`` rows: the acquisition only
+  journals each document and passes the same JSON line to that process;
 * the journal keeps every document on local disk as it is emitted, so a run whose
   process dies is rebuilt with :meth:`EmbeddedStore.recover` and nothing completed is
   lost;
@@ -119,9 +119,8 @@ class EmbeddedStore:
     def close(self) -> None:
         """Finish the catalog writes and stop the server (idempotent)."""
         server, self._server = self._server, None
-        if server is None:
-            return
-        server.stop()
+        if server is not None:
+            server.stop()
 
     def __enter__(self) -> EmbeddedStore:
         return self.open()
@@ -209,8 +208,8 @@ class _CatalogProcess:
 class _StoreWriter:
     """Journal first, then the document to the catalog process; wait at each stop.
 
-    The acquisition pays for one JSON line to the journal and one to a pipe per
-    document. At a stop document it waits until the catalog process has written the
+    The acquisition pays for one JSON serialisation per document, written to the
+    journal and to the pipe. At a stop document it waits until the catalog process has written the
     whole run; if the catalog could not take the run, its journal is left unfinished
     (so :meth:`EmbeddedStore.recover` rebuilds it) and the stop raises a
     :class:`QuietwellError` saying so.
@@ -220,8 +219,9 @@ class _StoreWriter:
         self.journal, self._catalog, self._data_dir = journal, catalog, data_dir
 
     def __call__(self, name: str, doc: dict) -> None:
-        uid = self.journal(name, doc, finish=False)
-        self._catalog.send(json.dumps([name, doc, uid], default=_jsonable) + "\n")
+        line = json.dumps([name, doc], default=_jsonable)  # serialised once, for both
+        uid = self.journal(name, doc, finish=False, line=line)
+        self._catalog.send(f"{uid or ''}\t{line}\n")
         if name == "stop":
             uid = doc.get("run_start")
             error = self._catalog.wait_for_run(uid)
@@ -232,9 +232,6 @@ class _StoreWriter:
                     f"recover --data-dir {self._data_dir}`"
                 )
             self.journal.finish(uid)
-
-    def close(self) -> None:
-        """Nothing is buffered in this process (the journal flushes every line)."""
 
 
 _OPEN: dict[Path, EmbeddedStore] = {}

@@ -36,23 +36,26 @@ class Journal:
         self.fsync = fsync
         self._files: dict[str, Any] = {}
 
-    def __call__(self, name: str, doc: dict, *, finish: bool = True) -> str | None:
+    def __call__(
+        self, name: str, doc: dict, *, finish: bool = True, line: str | None = None
+    ) -> str | None:
         """Append one document; return the uid of the run whose journal holds it.
 
         With ``finish=False`` a stop document closes the run's file but leaves it named
         unfinished until :meth:`finish` (the store does so once the catalog has the run).
+        ``line`` is ``[name, doc]`` already serialised, if the caller has it.
         """
         if name == "start":
             uid = doc["uid"]
             f = open(self.directory / f"{uid}.jsonl", "a", encoding="utf-8")  # noqa: SIM115
             self._files[uid] = f
-            self._write(f, name, doc)
+            self._write(f, name, doc, line)
             return uid
         own = doc.get("run_start") if name in ("descriptor", "stop", "stream_resource") else None
         uid = own if own in self._files else next(reversed(self._files), None)
         if uid is None:
             return None
-        self._write(self._files[uid], name, doc)
+        self._write(self._files[uid], name, doc, line)
         if name == "stop" and uid == own:
             self._files.pop(uid).close()
             if finish:
@@ -65,8 +68,8 @@ class Journal:
         if path.exists():
             path.rename(path.with_suffix(".done.jsonl"))
 
-    def _write(self, f, name: str, doc: dict) -> None:
-        f.write(json.dumps([name, doc], default=_jsonable) + "\n")
+    def _write(self, f, name: str, doc: dict, line: str | None = None) -> None:
+        f.write((line if line is not None else json.dumps([name, doc], default=_jsonable)) + "\n")
         f.flush()
         if self.fsync:
             os.fsync(f.fileno())

@@ -4,9 +4,9 @@ Arguments: the catalog directory, the raw-trace directory (listed in the server'
 readable storage), the writer's backup directory and its batch size.
 
 The process runs the tiled server and the ``TiledWriter`` that fills it. The parent
-sends the documents of its runs on standard input, one JSON line ``[name, doc, uid]``
-each, in the order they were emitted (the same documents it journals). On standard
-output the process writes, each on its own line,
+sends the documents of its runs on standard input, one line ``<uid>\t[name, doc]``
+each (the run's uid, a tab, the JSON text it journals), in the order they were
+emitted. On standard output the process writes, each on its own line,
 
 * ``uri <URI>`` once, when the server is up (the URI carries the API key);
 * ``done <uid>`` after the stop document of a run is written, or
@@ -55,7 +55,8 @@ def main(argv: list[str]) -> int:
         reply(f"uri {server.uri}")
         failed: dict[str, str] = {}
         for line in sys.stdin:
-            name, doc, uid = json.loads(line)
+            uid, _, payload = line.partition("\t")
+            name, doc = json.loads(payload)
             if uid not in failed:
                 try:
                     writer(name, doc)
