@@ -26,6 +26,7 @@ import scipy.special
 from numpy.typing import ArrayLike
 
 from quietwell._errors import FitError, InputError, QuietwellError, UnresolvedPeakError
+from quietwell.analysis import _fit_kernels
 from quietwell.analysis._welch import PSDResult, _dot
 
 __all__ = [
@@ -242,6 +243,7 @@ class _Problem:
     sample_rate: float = 0.0
     bins: np.ndarray | slice | None = None
     lag_times: np.ndarray | None = None  # tau / fs in s for tau = 0..N-1
+    bin_index: np.ndarray | None = None  # the same bins as an int64 index array
 
     def unpack(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
         q = theta[:-1].reshape(-1, 3)
@@ -267,6 +269,31 @@ class _Problem:
         jac[2:-1:3] = peak
         jac[-1] = b
         return peak.sum(axis=0) + b, jac
+
+    def deviance_stats(self, theta: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        """Compiled: ``(sum of P/S - ln(P/S) - 1, score, Fisher information)``, both
+        without the factor K; the sum is ``inf`` where the model is not positive."""
+        f0, gamma, area, b = self.unpack(theta)
+        g = np.empty(theta.size)
+        h = np.empty((theta.size, theta.size))
+        if self.lag_window is None:
+            total = _fit_kernels.plain_stats(
+                self.om, self.p, _TWO_PI * f0, gamma, area, b, _TWO_PI * self.df, g, h
+            )
+            return total, g, h
+        a = 0.5 * gamma
+        w1sq = (_TWO_PI * f0) ** 2 - a**2
+        if np.any(w1sq <= 0):
+            return math.inf, g, h
+        rows = np.empty((3 * f0.size, self.lag_window.size))
+        _fit_kernels.windowed_rows(
+            a, np.sqrt(w1sq), _TWO_PI * f0, area, _TWO_PI * self.df, self.lag_window, self.sample_rate, rows
+        )
+        spec = scipy.fft.rfft(rows, axis=1, workers=1)
+        total = _fit_kernels.windowed_stats(
+            spec, self.bin_index, rows[:, 0].copy(), 2.0 / self.sample_rate, self.p, b, g, h
+        )
+        return total, g, h
 
     def _windowed(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Expected Welch bins: the window-weighted autocovariance, Fourier transformed.
@@ -321,6 +348,49 @@ _POLISH_BELOW_BINS = 10.0
 
 
 def _objective(prob: _Problem):
+    """``fun, jac, hess`` of the negative log-likelihood with the floor's weak prior."""
+    if _fit_kernels.AVAILABLE:
+        return _compiled_objective(prob)
+    return _numpy_objective(prob)
+
+
+#: Curvature of the weak Gaussian prior on ln(background), see _numpy_objective.
+_PRIOR_W2 = 1.0 / _LN_FLOOR_WIDTH**2
+
+
+def _compiled_objective(prob: _Problem):
+    """The same as :func:`_numpy_objective`, from one compiled pass per point."""
+    cache: dict[bytes, tuple[float, np.ndarray, np.ndarray]] = {}
+
+    def get(theta):
+        key = theta.tobytes()
+        if key not in cache:
+            cache.clear()
+            total, g, h = prob.deviance_stats(theta)
+            if math.isfinite(total):
+                g *= prob.k
+                g[-1] += _PRIOR_W2 * theta[-1]
+                h *= prob.k
+                h[-1, -1] += _PRIOR_W2
+                total = prob.k * total + 0.5 * _PRIOR_W2 * theta[-1] ** 2
+            else:
+                total = math.inf
+            cache[key] = (float(total), g, h)
+        return cache[key]
+
+    def fun(theta):
+        return get(theta)[0]
+
+    def jac(theta):
+        return get(theta)[1].copy()
+
+    def hess(theta):
+        return get(theta)[2].copy()
+
+    return fun, jac, hess
+
+
+def _numpy_objective(prob: _Problem):
     cache: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}
 
     def get(theta):
@@ -336,7 +406,7 @@ def _objective(prob: _Problem):
     # likelihood is then flat as the floor goes to 0 and ln B would run off. Where
     # the data see the floor, the prior's pull is negligible (its curvature is
     # 1/_LN_FLOOR_WIDTH**2 against the data's K * n_bins).
-    w2 = 1.0 / _LN_FLOOR_WIDTH**2
+    w2 = _PRIOR_W2
 
     def fun(theta):
         s, _ = get(theta)
@@ -748,6 +818,7 @@ def fit_psd(
             lag_window=_lag_window(spec.window),
             sample_rate=2.0 * nyquist,
             bins=_as_slice(np.flatnonzero(mask)),
+            bin_index=np.flatnonzero(mask).astype(np.int64),
             lag_times=np.arange(spec.window.size) / (2.0 * nyquist),
         )
     theta0 = np.empty(3 * n_peaks + 1)
