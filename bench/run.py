@@ -222,10 +222,12 @@ def analysis_floor(ctx: Context) -> list[Row]:
                 "The floor is pocketfft on both cores with nothing else. Our PSD transforms "
                 "the raw segments and adds one compiled pass per block that applies the "
                 "window along frequency (3 taps for Hann), removes the mean (X[0] = 0) and "
-                "sums |X|**2. The fits add a few ms CPU per channel, mostly the "
+                "sums |X|**2. The fits add about 2 ms per channel: peak finding and the "
+                "initial guess in numpy, the likelihood's score and Fisher information in "
+                "one compiled pass per evaluation, and for lines narrower than 10 bins the "
                 "window-exact model (an N-point FFT of the windowed autocovariance per "
-                "evaluation) for lines narrower than 10 bins, which keeps linewidths "
-                "unbiased (+1.2 % bias in gamma without it at 4 bins, see tests/test_fit.py)."
+                "evaluation), which keeps linewidths unbiased (+1.2 % bias in gamma "
+                "without it at 4 bins, see tests/test_fit.py)."
             ),
         )
     ]
