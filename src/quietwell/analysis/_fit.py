@@ -11,6 +11,7 @@ the same data is biased; see Rev. Sci. Instrum. 81, 075103 (2010).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 import os
 from collections.abc import Sequence
@@ -243,7 +244,13 @@ class _Problem:
     sample_rate: float = 0.0
     bins: np.ndarray | slice | None = None
     lag_times: np.ndarray | None = None  # tau / fs in s for tau = 0..N-1
-    bin_index: np.ndarray | None = None  # the same bins as an int64 index array
+
+    @functools.cached_property
+    def bin_index(self) -> np.ndarray:
+        """``bins`` as an int64 index array (for the compiled loops)."""
+        if isinstance(self.bins, slice):
+            return np.arange(self.bins.start, self.bins.stop, dtype=np.int64)
+        return np.asarray(self.bins, dtype=np.int64)
 
     def unpack(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
         q = theta[:-1].reshape(-1, 3)
@@ -818,7 +825,6 @@ def fit_psd(
             lag_window=_lag_window(spec.window),
             sample_rate=2.0 * nyquist,
             bins=_as_slice(np.flatnonzero(mask)),
-            bin_index=np.flatnonzero(mask).astype(np.int64),
             lag_times=np.arange(spec.window.size) / (2.0 * nyquist),
         )
     theta0 = np.empty(3 * n_peaks + 1)

@@ -5,8 +5,8 @@ derivatives ``J_a = dS/dtheta_a``, the Gamma deviance terms
 ``P/S - ln(P/S) - 1``, the score ``sum J_a (S - P)/S**2`` and the Fisher
 information ``sum J_a J_b / S**2``.  Written with whole-array numpy operations
 (the fallback in ``_fit``) that is a dozen passes over the bins and a dozen
-temporaries, all under the interpreter lock; here it is one pass, compiled with
-numba and run without the lock, so channels fitted in threads run in parallel.
+temporaries, all under the interpreter lock; here it is one compiled call of a few
+tight loops, run without the lock, so channels fitted in threads run in parallel.
 
 numba is an optional accelerator: without it ``AVAILABLE`` is False and ``_fit``
 uses its numpy expressions, which the tests compare with these loops.
