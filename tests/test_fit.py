@@ -225,6 +225,31 @@ def test_compiled_likelihood_equals_the_numpy_expressions(monkeypatch, case):
         assert compiled.peaks[0].gamma / TWO_PI < _fit._POLISH_BELOW_BINS * fs / 4096
 
 
+def test_compiled_prominences_equal_scipy():
+    # The O(n) prominences of the peak search against the reference implementation,
+    # scipy.signal.peak_prominences, exactly: random walks, and small integers with
+    # many ties (where "higher" must stay strict, as in scipy).
+    import scipy.signal
+
+    from quietwell.analysis import _fit_kernels
+
+    if not _fit_kernels.AVAILABLE:
+        pytest.skip("numba is not installed: the peak search uses scipy directly")
+    rng = np.random.default_rng(11)
+    checked = 0
+    for trial in range(300):
+        n = int(rng.integers(3, 600))
+        x = rng.integers(0, 6, n).astype(float) if trial % 2 else rng.normal(size=n).cumsum()
+        peaks, _ = scipy.signal.find_peaks(x)
+        if peaks.size == 0:
+            continue
+        got = np.empty(peaks.size)
+        _fit_kernels.prominences_into(x, peaks.astype(np.int64), got)
+        np.testing.assert_array_equal(got, scipy.signal.peak_prominences(x, peaks)[0])
+        checked += 1
+    assert checked > 250
+
+
 # -------------------------------------------------------------------- refusals
 
 

@@ -619,7 +619,11 @@ def _find_peaks(
     # The same filters as find_peaks(..., prominence=threshold) followed by the
     # baseline test, in the cheaper order: prominences only of the survivors.
     idx = idx[log_s[idx] - baseline[idx] >= threshold]
-    prominence = scipy.signal.peak_prominences(log_s, idx)[0]
+    if _fit_kernels.AVAILABLE:
+        prominence = np.empty(idx.size)
+        _fit_kernels.prominences_into(log_s, idx.astype(np.int64), prominence)
+    else:
+        prominence = scipy.signal.peak_prominences(log_s, idx)[0]
     keep = prominence >= threshold
     idx, prominence = idx[keep], prominence[keep]
     idx = idx[np.argsort(prominence)[::-1]]

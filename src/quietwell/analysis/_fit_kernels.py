@@ -23,7 +23,7 @@ try:  # numba compiles the loops below; numpy is the fallback in _fit
 except Exception:  # pragma: no cover - numba missing or broken
     _numba = None
 
-__all__ = ["AVAILABLE", "plain_stats", "windowed_rows", "windowed_stats"]
+__all__ = ["AVAILABLE", "plain_stats", "prominences_into", "windowed_rows", "windowed_stats"]
 
 #: Lags between exact complex exponentials in :func:`windowed_rows`; in between,
 #: each lag is the previous times one step (rounding error below 64 ulp).
@@ -146,6 +146,50 @@ def _windowed_stats_loop(spec, bins, row0, scale, p, b, g, h):  # pragma: no cov
     return _finish(jac, s, p, g, h)
 
 
+def _prominences_loop(x, peaks, out):  # pragma: no cover - compiled by numba
+    """Prominence of each of ``peaks`` in ``x``, as ``scipy.signal.peak_prominences``.
+
+    SciPy walks from each peak to either side until a higher sample (or the end)
+    and takes the lowest sample on the way, so its cost grows with the distance to
+    the next higher sample, which for the many small maxima on the flank of a broad
+    line is most of the spectrum.  Here one pass to the right (and one to the left)
+    keeps a stack of the samples not yet exceeded, each with the lowest sample
+    between it and the stack entry below it: popping the entries a new sample
+    exceeds joins their stretches, so every sample's lowest sample back to the
+    nearest higher one comes in O(n) for all samples together.
+    """
+    n = x.size
+    left = np.empty(n)
+    right = np.empty(n)
+    stack = np.empty(n, np.int64)
+    low = np.empty(n)
+    top = 0
+    for i in range(n):
+        m = x[i]
+        while top > 0 and x[stack[top - 1]] <= x[i]:
+            top -= 1
+            if low[top] < m:
+                m = low[top]
+        left[i] = m
+        stack[top] = i
+        low[top] = m
+        top += 1
+    top = 0
+    for i in range(n - 1, -1, -1):
+        m = x[i]
+        while top > 0 and x[stack[top - 1]] <= x[i]:
+            top -= 1
+            if low[top] < m:
+                m = low[top]
+        right[i] = m
+        stack[top] = i
+        low[top] = m
+        top += 1
+    for j in range(peaks.size):
+        k = peaks[j]
+        out[j] = x[k] - max(left[k], right[k])
+
+
 if _numba is not None:
     AVAILABLE = True
     # FMA contraction and reassociated sums (so the reductions vectorise); no flag
@@ -156,6 +200,7 @@ if _numba is not None:
     plain_stats = _jit(_plain_stats_loop)
     windowed_rows = _jit(_windowed_rows_loop)
     windowed_stats = _jit(_windowed_stats_loop)
+    prominences_into = _numba.njit(nogil=True, cache=True)(_prominences_loop)
 else:  # pragma: no cover - numba missing
     AVAILABLE = False
-    plain_stats = windowed_rows = windowed_stats = None
+    plain_stats = windowed_rows = windowed_stats = prominences_into = None
