@@ -146,6 +146,22 @@ def _windowed_stats_loop(spec, bins, row0, scale, p, b, g, h):  # pragma: no cov
     return _finish(jac, s, p, g, h)
 
 
+def _lowest_back_to_higher(x, first, stop, step, out, stack, low):  # pragma: no cover - numba
+    """``out[i]``: the lowest of ``x`` from ``i`` back (against ``step``) to the nearest
+    sample higher than ``x[i]``, exclusive, or to the end; ``stack``, ``low``: scratch."""
+    top = 0
+    for i in range(first, stop, step):
+        m = x[i]
+        while top > 0 and x[stack[top - 1]] <= x[i]:
+            top -= 1
+            if low[top] < m:
+                m = low[top]
+        out[i] = m
+        stack[top] = i
+        low[top] = m
+        top += 1
+
+
 def _prominences_loop(x, peaks, out):  # pragma: no cover - compiled by numba
     """Prominence of each of ``peaks`` in ``x``, as ``scipy.signal.peak_prominences``.
 
@@ -163,28 +179,8 @@ def _prominences_loop(x, peaks, out):  # pragma: no cover - compiled by numba
     right = np.empty(n)
     stack = np.empty(n, np.int64)
     low = np.empty(n)
-    top = 0
-    for i in range(n):
-        m = x[i]
-        while top > 0 and x[stack[top - 1]] <= x[i]:
-            top -= 1
-            if low[top] < m:
-                m = low[top]
-        left[i] = m
-        stack[top] = i
-        low[top] = m
-        top += 1
-    top = 0
-    for i in range(n - 1, -1, -1):
-        m = x[i]
-        while top > 0 and x[stack[top - 1]] <= x[i]:
-            top -= 1
-            if low[top] < m:
-                m = low[top]
-        right[i] = m
-        stack[top] = i
-        low[top] = m
-        top += 1
+    _lowest_back_to_higher(x, 0, n, 1, left, stack, low)
+    _lowest_back_to_higher(x, n - 1, -1, -1, right, stack, low)
     for j in range(peaks.size):
         k = peaks[j]
         out[j] = x[k] - max(left[k], right[k])
@@ -200,6 +196,7 @@ if _numba is not None:
     plain_stats = _jit(_plain_stats_loop)
     windowed_rows = _jit(_windowed_rows_loop)
     windowed_stats = _jit(_windowed_stats_loop)
+    _lowest_back_to_higher = _numba.njit(nogil=True, cache=True)(_lowest_back_to_higher)
     prominences_into = _numba.njit(nogil=True, cache=True)(_prominences_loop)
 else:  # pragma: no cover - numba missing
     AVAILABLE = False
