@@ -328,6 +328,7 @@ def _three_paths(cfg: Config, out: dict, key: str, samples: int, n: int,
     adds to the run: ``append + (plugin - acquisition alone)``. The all-in figure
     (RunEngine, detector and store together) is shown beside it.
     """
+    record_bytes = len(CHANNELS) * samples * 4
     store, t_start = open_store(cfg.work / f"store-{key}")
     try:
         plugin = PluginPath(store, samples)
@@ -341,7 +342,6 @@ def _three_paths(cfg: Config, out: dict, key: str, samples: int, n: int,
             path.remove_files()
         h5py_run(cfg.work / "baseline.h5", 2 * n, plugin.backend.sets, samples)
         reps: list[dict] = []
-        record_bytes = len(CHANNELS) * samples * 4
         for _ in range(cfg.repeat):
             got: dict = {}
             for k in (n, 2 * n):
@@ -361,17 +361,17 @@ def _three_paths(cfg: Config, out: dict, key: str, samples: int, n: int,
         store.close()
         t_close = time.perf_counter() - t0
 
+    def per(r: dict, name: str) -> float:
+        """Per record in round ``r``: (T(2N) - T(N)) / N of the same round."""
+        return (r[(name, 2 * n)] - r[(name, n)]) / n
+
     def med(name: str) -> PerRecord:
-        # per round, T(N) and T(2N) of the same interleaved round; then the median
-        pairs = sorted(((r[(name, 2 * n)] - r[(name, n)]) / n, r[(name, n)]) for r in reps)
-        per, t_n = pairs[len(pairs) // 2]
-        return PerRecord(t_n, t_n + n * per, n)
+        # the round with the median per-record figure, and its T(N)
+        per_record, t_n = sorted((per(r, name), r[(name, n)]) for r in reps)[len(reps) // 2]
+        return PerRecord(t_n, t_n + n * per_record, n)
 
     p, a, h = med("plugin"), med("bare"), med("h5py")
     append = med("plugin:append").per_record
-
-    def per(r: dict, name: str) -> float:
-        return (r[(name, 2 * n)] - r[(name, n)]) / n
 
     # Paired within each round (the three paths ran back to back under the same
     # conditions): storing = append + (plugin - acquisition alone), over h5py; the
@@ -398,11 +398,10 @@ def _three_paths(cfg: Config, out: dict, key: str, samples: int, n: int,
     )
     amortised = float(np.median(runs))
     r1, r3 = (float(v) for v in np.percentile(runs, [25, 75]))
-    size = len(CHANNELS) * samples * 4
     out[key] = dict(p=p, h=h, a=a, ratio=ratio, all_in=all_in, storing=storing,
-                    append=append, t_start=t_start, t_close=t_close, size=size)
+                    append=append, t_start=t_start, t_close=t_close, size=record_bytes)
     return [
-        Row(f"record size ({label})", _mb(size)),
+        Row(f"record size ({label})", _mb(record_bytes)),
         Row(f"(a) plugin with the store, per record (runs of {n} and {2 * n}, "
             f"median of {cfg.repeat})", _ms(p.per_record)),
         Row("(b) the same acquisition storing nothing, per record", _ms(a.per_record)),

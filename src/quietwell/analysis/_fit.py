@@ -281,20 +281,20 @@ class _Problem:
         """Compiled: ``(sum of P/S - ln(P/S) - 1, score, Fisher information)``, both
         without the factor K; the sum is ``inf`` where the model is not positive."""
         f0, gamma, area, b = self.unpack(theta)
+        om0 = _TWO_PI * f0
+        du = _TWO_PI * self.df
         g = np.empty(theta.size)
         h = np.empty((theta.size, theta.size))
         if self.lag_window is None:
-            total = _fit_kernels.plain_stats(
-                self.om, self.p, _TWO_PI * f0, gamma, area, b, _TWO_PI * self.df, g, h
-            )
+            total = _fit_kernels.plain_stats(self.om, self.p, om0, gamma, area, b, du, g, h)
             return total, g, h
         a = 0.5 * gamma
-        w1sq = (_TWO_PI * f0) ** 2 - a**2
+        w1sq = om0**2 - a**2
         if np.any(w1sq <= 0):
             return math.inf, g, h
         rows = np.empty((3 * f0.size, self.lag_window.size))
         _fit_kernels.windowed_rows(
-            a, np.sqrt(w1sq), _TWO_PI * f0, area, _TWO_PI * self.df, self.lag_window, self.sample_rate, rows
+            a, np.sqrt(w1sq), om0, area, du, self.lag_window, self.sample_rate, rows
         )
         spec = scipy.fft.rfft(rows, axis=1, workers=1)
         total = _fit_kernels.windowed_stats(
