@@ -57,9 +57,13 @@ def test_a_run_the_catalog_refuses_stays_in_the_journal_and_is_recovered(tmp_pat
         st.writer("event", {"uid": str(uuid.uuid4()), "descriptor": str(uuid.uuid4()),
                             "time": now, "seq_num": 1, "data": {}, "timestamps": {},
                             "filled": {}})
-        with pytest.raises(QuietwellError, match="quietwell recover --data-dir"):
-            st.writer("stop", {"uid": str(uuid.uuid4()), "run_start": uid, "time": now,
-                               "exit_status": "success", "num_events": {}})
+        # the acquisition does not wait for the catalog: the stop returns at once ...
+        st.writer("stop", {"uid": str(uuid.uuid4()), "run_start": uid, "time": now,
+                           "exit_status": "success", "num_events": {}})
+        # ... and reading through the store reports the refused run, once
+        with pytest.raises(QuietwellError, match=f"{uid}.*quietwell recover --data-dir"):
+            st.wait()
+        st.wait()
         assert (pathlib.Path(st.journal_dir) / f"{uid}.jsonl").exists()
         # the next run goes through as usual
         RE = RunEngine({}, context_managers=[])
@@ -87,3 +91,24 @@ def test_bad_data_dir_is_one_line(tmp_path):
         quietwell.open_catalog(tmp_path / "empty")
     with pytest.raises(InputError, match="batch_size=0"):
         EmbeddedStore(tmp_path, batch_size=0)
+
+
+def test_a_catalog_process_that_dies_loses_nothing(tmp_path):
+    from quietwell import QuietwellError
+
+    RE = RunEngine({}, context_managers=[])
+    st = EmbeddedStore(tmp_path).open()
+    RE.subscribe(st.writer)
+    st._server.proc.kill()  # as if the catalog process crashed between runs
+    st._server.proc.wait()
+    with pytest.raises(QuietwellError, match="catalog process has ended"):
+        RE(bp.count([det], num=3))
+    (journal,) = pathlib.Path(st.journal_dir).glob("*.jsonl")
+    uid = journal.stem
+    assert st.close() == {uid: "the catalog process ended before writing it"}
+    with EmbeddedStore(tmp_path) as again:
+        assert again.recover() == [uid]
+        run = again.client[uid]
+        assert np.asarray(run["primary"].read()["det"]).size == 3
+        # the run itself completed: the journal holds its own stop document
+        assert run.metadata["stop"]["exit_status"] == "success"

@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ._errors import QuietwellError
 from .analysis._derived import fit_line
 from .physics import AXES, MBAR, Estimate
 
@@ -79,6 +80,13 @@ class _Timer:
 
         return timed
 
+    def __enter__(self) -> _Timer:
+        self._t0 = time.perf_counter()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.total += time.perf_counter() - self._t0
+
 
 def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=print) -> DemoResult:
     """Run the characterisation of ``config`` into the embedded store at ``data_dir``."""
@@ -101,7 +109,7 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
     setup = load_setup(find_profile(cfg.profile))
     result = DemoResult(Path(data_dir).expanduser().resolve())
     with EmbeddedStore(data_dir) as store:
-        RE = RunEngine({}, context_managers=[])
+        RE = RunEngine({}, context_managers=[], call_returns_result=True)
         store_timer = _Timer()
         RE.subscribe(store_timer.wrap(store.writer))
         app = build_apparatus(setup, store.raw_dir)
@@ -111,19 +119,18 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         lab.record = sim_timer.wrap(lab.record)
         lab.advance = sim_timer.wrap(lab.advance)
         det = [app.detector]
-        fits_seconds = 0.0
+        catalog_timer = _Timer()
 
         truths: dict[str, object] = {}
 
         def run(name, plan):
-            nonlocal fits_seconds
+            # The plan returns its summary; the catalog meanwhile finishes the run on
+            # the other core and every run is read back from it at the end.
             t0 = time.perf_counter()
-            (uid,) = RE(plan)
+            res = RE(plan)
+            (uid,) = res.run_start_uids
             truths[name] = lab.truth()
-            run_ = store.client[uid]
-            summary = {k: _first(v) for k, v in run_["summary"].read().items() if k != "time"}
-            fits = run_["fits"].read()
-            fits_seconds += float(np.nansum(np.asarray(fits["fit_seconds"])))
+            summary = {k: _first(v) for k, v in (res.plan_result or {}).items()}
             result.uids[name] = uid
             result.summaries[name] = summary
             log(f"  {name:<28s} {time.perf_counter() - t0:6.1f} s  uid {uid[:8]}")
@@ -136,8 +143,6 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
             drive_frequency=0.85 * setup.trap.frequencies[0], drive_amplitude=8.0,
             records_per_step=5, record_length=cfg.short_record, input_range=2.0, **common))
         m_charge = Estimate(charge["mass"], charge["mass_stderr"])
-        charge_truth = store.client[result.uids["charge_calibration"]].metadata["start"][
-            "sim_truth"]["charge_e"]
         thermal = run("thermal_calibration", thermal_calibration(
             det, 3 * MBAR, records=4, mass=m_charge, record_length=cfg.record_length,
             input_range=2.0, **common))
@@ -163,6 +168,11 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
                 run(f"sideband_thermometry@{g:g}", sideband_thermometry(
                     [app.heterodyne], 8, apparatus=app, axis="x", feedback_gain=g,
                     input_range=0.2))
+        with catalog_timer:
+            store.wait()  # the catalog holds every run
+        fits_seconds = _read_back(store.client, result)
+        charge_truth = store.client[result.uids["charge_calibration"]].metadata["start"][
+            "sim_truth"]["charge_e"]
         truth = lab.truth()
         result.truth = {"radius": truth.radius, "mass": truth.mass, "charge": charge_truth,
                         "calibration": list(setup.detector.calibration),
@@ -172,7 +182,8 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         result.summaries["heating_vs_pressure"] = _heating_vs_pressure(heat_runs)
         result.truth["per_run"] = {name: _truth_row(t) for name, t in truths.items()}
     result.timing = {"total": time.perf_counter() - t_start, "simulation": sim_timer.total,
-                     "analysis (fit thread)": fits_seconds, "storage (writer)": store_timer.total}
+                     "analysis (fit thread)": fits_seconds, "storage (writer)": store_timer.total,
+                     "storage (waits for the catalog)": catalog_timer.total}
     (result.data_dir / "demo-summary.json").write_text(json.dumps(
         {"uids": result.uids, "summaries": result.summaries, "truth": result.truth,
          "timing": result.timing}, indent=1, default=float))
@@ -198,6 +209,29 @@ def _truth_row(t) -> dict:
             n_min.append(math.nan)
     row["min_occupation"] = n_min
     return row
+
+
+def _read_back(client, result: DemoResult) -> float:
+    """Check every run's stored summary against what its plan returned; the fit time.
+
+    Returns the seconds the live fits took, summed over the ``fits`` streams.
+    """
+    fit_seconds = 0.0
+    for name, uid in result.uids.items():
+        run_ = client[uid]
+        stored = {k: _first(v) for k, v in run_["summary"].read().items() if k != "time"}
+        returned = result.summaries[name]
+        for key in sorted(set(stored) | set(returned)):
+            a, b = stored.get(key, "missing"), returned.get(key, "missing")
+            same = (a == b or (isinstance(a, float) and isinstance(b, float)
+                               and (math.isclose(a, b, rel_tol=1e-12)
+                                    or (math.isnan(a) and math.isnan(b)))))
+            if not same:
+                raise QuietwellError(f"run {uid} ({name}): the stored summary has {key}={a!r}, "
+                                     f"its plan returned {b!r}; see the server log in "
+                                     f"{result.data_dir / 'catalog'}")
+        fit_seconds += float(np.nansum(np.asarray(run_["fits"].read()["fit_seconds"])))
+    return fit_seconds
 
 
 def _first(col):

@@ -25,14 +25,23 @@ def run_with_fitter(app: Apparatus, detectors: Sequence[Any], fitter: LiveFitter
 
     However the body ends (an exception, an abort), the fits of every completed record
     are read into the run before it closes, and the fitter's thread is stopped after.
+    Returns what ``body`` returns (the plans' summary values; ``run_wrapper`` itself
+    would return the run's uid), so ``RunEngine(call_returns_result=True)`` hands it
+    back as ``plan_result``.
     """
     rec = Recorder(app, detectors, fitter)
-    plan = bpp.finalize_wrapper(body(rec), rec.flush)
+    returned: list = []
+
+    def kept(gen: Generator) -> Generator:
+        returned.append((yield from gen))
+
+    plan = bpp.finalize_wrapper(kept(body(rec)), rec.flush)
     plan = bpp.run_wrapper(plan, md=md)
     plan = bpp.stage_wrapper(plan, list(detectors))
     plan = bpp.subs_wrapper(plan, {"all": [fitter.feed]})
     plan = bpp.finalize_wrapper(plan, _close(fitter))
-    return (yield from plan)
+    yield from plan
+    return returned[0] if returned else None
 
 
 def _close(fitter: LiveFitter) -> Generator:

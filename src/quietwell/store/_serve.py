@@ -20,13 +20,19 @@ dies closes it too, so no server outlives its owner.
 
 Its own process gives the catalog its own interpreter lock and the second core: the
 writer's and the server's work no longer compete with the acquisition for the lock.
+A thread reads standard input into an unbounded queue as fast as the lines arrive, so
+the parent never blocks on a full pipe while the writer is busy with an HTTP request
+(64 KiB of pipe is about 40 records of documents, and one batch of requests takes
+longer than that many records on the bench); the parent's journal is the durable copy.
 """
 
 from __future__ import annotations
 
 import json
 import os
+import queue
 import sys
+import threading
 
 
 def main(argv: list[str]) -> int:
@@ -54,7 +60,15 @@ def main(argv: list[str]) -> int:
                              backup_directory=backup_dir)
         reply(f"uri {server.uri}")
         failed: dict[str, str] = {}
-        for line in sys.stdin:
+        lines: queue.SimpleQueue = queue.SimpleQueue()
+
+        def read_input() -> None:
+            for text in sys.stdin:
+                lines.put(text)
+            lines.put(None)  # end of input: the parent closed the pipe
+
+        threading.Thread(target=read_input, name="quietwell-catalog-input", daemon=True).start()
+        while (line := lines.get()) is not None:
             uid, _, payload = line.partition("\t")
             name, doc = json.loads(payload)
             if uid not in failed:
