@@ -192,7 +192,7 @@ class _CatalogProcess:
     """
 
     def __init__(self, catalog_dir: Path, raw_dir: Path, backup_dir: Path, batch_size: int,
-                 on_done: Callable[[str], None] = lambda uid: None) -> None:
+                 on_done: Callable[[str], None]) -> None:
         self.log_path = catalog_dir / "server.log"
         self._on_done = on_done
         self._cond = threading.Condition()
