@@ -15,11 +15,14 @@ from ._common import Apparatus, Recorder, run_metadata, set_feedback, wait_lab
 from ._derived_device import DerivedValues
 from ._gain_sweep import gain_sweep, predicted_cold_damping
 from ._pressure_sweep import pressure_sweep
+from ._registry import STEPS, Param, Result, Step
 from ._reheating import reheating_cycles
 from ._sideband import sideband_thermometry
+from ._state import Checked, LabState, reach_state, state_after, unsafe_reason
 
 __all__ = [
-    "Apparatus", "DerivedValues", "Recorder", "charge_calibration", "gain_sweep",
-    "predicted_cold_damping", "pressure_sweep", "reheating_cycles", "run_metadata",
-    "set_feedback", "sideband_thermometry", "thermal_calibration", "wait_lab",
+    "Apparatus", "Checked", "DerivedValues", "LabState", "Param", "Recorder", "Result",
+    "STEPS", "Step", "charge_calibration", "gain_sweep", "predicted_cold_damping",
+    "pressure_sweep", "reach_state", "reheating_cycles", "run_metadata", "set_feedback",
+    "sideband_thermometry", "state_after", "thermal_calibration", "unsafe_reason", "wait_lab",
 ]

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import cmath
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -21,29 +21,97 @@ from .._errors import InputError, LimitError
 from ..analysis._derived import fit_integer_charge
 from ..live import CombinedAnalyzer, DriveAnalyzer, LiveFitter, ModeAnalyzer
 from ..physics import AXES, E_CHARGE, Estimate, mass_from_drive, thermal_calibration
+from ..setup import Setup
 from ._common import (
     Apparatus,
-    check_pressures,
     emit_summary,
     run_metadata,
-    set_feedback,
     wait_lab,
     weighted_mean,
 )
 from ._derived_device import DerivedValues
-from ._pressure_sweep import set_setpoint
-from ._runner import as_estimate, configure_detector, nominal_mass, run_with_fitter
+from ._runner import (
+    DETECTOR_DEFAULTS,
+    clean_detector,
+    configure_detector,
+    nominal_mass,
+    run_with_fitter,
+    take,
+)
+from ._state import (
+    OFF,
+    Checked,
+    LabState,
+    clean_estimate,
+    clean_int,
+    clean_positive,
+    clean_pressure,
+    reach_state,
+    record_seconds,
+)
 
-__all__ = ["thermal_calibration_plan", "charge_calibration"]
+__all__ = ["thermal_calibration_plan", "charge_calibration", "validate_thermal_calibration",
+           "validate_charge_calibration"]
 
 
-def _thermal_pressure(app: Apparatus, pressure: float, plan: str) -> float:
-    (p,) = check_pressures(app, [pressure], "pressure")
-    if p < app.setup.trap.loss_pressure:
+def _thermal_pressure(setup: Setup, pressure: Any, plan: str) -> float:
+    p = clean_pressure(setup, pressure, "pressure")
+    if p < setup.trap.loss_pressure:
         raise LimitError(f"{plan} needs feedback off, so pressure={p:g} Pa must be at or "
-                         f"above the setup's loss pressure {app.setup.trap.loss_pressure:g} Pa;"
+                         f"above the setup's loss pressure {setup.trap.loss_pressure:g} Pa;"
                          " choose a higher pressure")
     return p
+
+
+def validate_thermal_calibration(setup: Setup, params: Mapping[str, Any]) -> Checked:
+    """Clean the parameters of :func:`thermal_calibration_plan` (no device is opened)."""
+    a = take(params, "thermal_calibration", required=("pressure",),
+             optional={"records": 4, "mass": None, "settle_time": 1.0, **DETECTOR_DEFAULTS})
+    p = _thermal_pressure(setup, a["pressure"], "thermal_calibration")
+    a["pressure"] = p
+    a["records"] = clean_int(a["records"], "records", 1)
+    a["settle_time"] = clean_positive(a["settle_time"], "settle_time", "s", allow_zero=True)
+    if a["mass"] is not None:
+        a["mass"] = clean_estimate(a["mass"], "mass")
+    clean_detector(setup, a)
+    t = a["records"] * record_seconds(setup, a["sample_rate"], a["record_length"])
+    state = LabState(pressure=p, feedback=OFF)
+    return Checked("thermal_calibration", a, t + a["settle_time"], needs=state, leaves=state)
+
+
+def validate_charge_calibration(setup: Setup, params: Mapping[str, Any]) -> Checked:
+    """Clean the parameters of :func:`charge_calibration` (no device is opened)."""
+    a = take(params, "charge_calibration",
+             required=("charge_steps", "pressure", "drive_frequency", "drive_amplitude"),
+             optional={"records_per_step": 3, "settle_time": 0.5, **DETECTOR_DEFAULTS})
+    p = _thermal_pressure(setup, a["pressure"], "charge_calibration")
+    a["pressure"] = p
+    steps = a["charge_steps"]
+    if (isinstance(steps, str) or not isinstance(steps, Sequence) or len(steps) < 3
+            or any(isinstance(s, bool) or not isinstance(s, int) for s in steps)):
+        raise InputError(f"charge_steps={steps!r} must be at least 3 integers (elementary "
+                         "charges changed before each step, e.g. [0, -1, -1, -1])")
+    a["charge_steps"] = [int(s) for s in steps]
+    amp = clean_positive(a["drive_amplitude"], "drive_amplitude", "V")
+    if amp > setup.limits.electrode_voltage_max:
+        raise LimitError(f"drive_amplitude={amp:g} V is outside (0, "
+                         f"{setup.limits.electrode_voltage_max:g}] V (setup limit); lower it")
+    a["drive_amplitude"] = amp
+    fd = clean_positive(a["drive_frequency"], "drive_frequency", "Hz")
+    f_modes = setup.trap.frequencies
+    if any(abs(fd - f) < 0.05 * f for f in f_modes):
+        raise InputError(f"drive_frequency={fd:g} Hz is within 5 % of a mode "
+                         f"({', '.join(f'{f:g}' for f in f_modes)} Hz); drive off resonance")
+    a["drive_frequency"] = fd
+    a["records_per_step"] = clean_int(a["records_per_step"], "records_per_step", 1)
+    a["settle_time"] = clean_positive(a["settle_time"], "settle_time", "s", allow_zero=True)
+    clean_detector(setup, a)
+    blocks = 1 + len(a["charge_steps"])
+    t = blocks * (a["records_per_step"] * record_seconds(setup, a["sample_rate"],
+                                                         a["record_length"]) + a["settle_time"])
+    needs = LabState(pressure=p, feedback=OFF, needs_charge=True)
+    leaves = LabState(pressure=p, feedback=OFF, charge_change=sum(a["charge_steps"]))
+    return Checked("charge_calibration", a, t, needs=needs, leaves=leaves)
 
 
 def _mean_area(fits: Sequence[dict], axis: str) -> tuple[float, float, float, float]:
@@ -78,10 +146,11 @@ def thermal_calibration_plan(
     (``mass_source``). Run name: ``thermal_calibration``.
     """
     app = apparatus
-    p = _thermal_pressure(app, pressure, "thermal_calibration")
-    if not isinstance(records, int) or records < 1:
-        raise InputError(f"records={records!r} must be an integer >= 1")
-    m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
+    chk = validate_thermal_calibration(app.setup, dict(
+        pressure=pressure, records=records, mass=mass, settle_time=settle_time,
+        sample_rate=sample_rate, record_length=record_length, input_range=input_range))
+    p, records, settle_time = chk.params["pressure"], chk.params["records"], chk.params["settle_time"]
+    m = nominal_mass(app) if mass is None else chk.params["mass"]
     source = "setup" if mass is None else "measured"
     motion = detectors[0]
     fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
@@ -94,8 +163,7 @@ def thermal_calibration_plan(
     temperature = app.setup.temperature
 
     def body(rec):
-        yield from set_feedback(app, None)
-        yield from set_setpoint(app, p)
+        yield from reach_state(app, chk.needs)  # pressure first, then feedback off
         yield from wait_lab(app, settle_time)
         for _ in range(records):
             yield from rec.record()
@@ -159,17 +227,15 @@ def charge_calibration(
     """
     app = apparatus
     setup = app.setup
-    p = _thermal_pressure(app, pressure, "charge_calibration")
-    steps = [int(s) for s in charge_steps]
-    if len(steps) < 3 or any(s != c for s, c in zip(steps, charge_steps, strict=True)):
-        raise InputError(f"charge_steps={list(charge_steps)!r} must be at least 3 integers")
-    if not setup.limits.electrode_voltage_max >= drive_amplitude > 0:
-        raise LimitError(f"drive_amplitude={drive_amplitude:g} V is outside (0, "
-                         f"{setup.limits.electrode_voltage_max:g}] V (setup limit); lower it")
+    chk = validate_charge_calibration(setup, dict(
+        charge_steps=charge_steps, pressure=pressure, drive_frequency=drive_frequency,
+        drive_amplitude=drive_amplitude, records_per_step=records_per_step,
+        settle_time=settle_time, sample_rate=sample_rate, record_length=record_length,
+        input_range=input_range))
+    p, steps = chk.params["pressure"], chk.params["charge_steps"]
+    records_per_step, settle_time = chk.params["records_per_step"], chk.params["settle_time"]
+    drive_frequency, drive_amplitude = chk.params["drive_frequency"], chk.params["drive_amplitude"]
     f_modes = setup.trap.frequencies
-    if any(abs(drive_frequency - f) < 0.05 * f for f in f_modes):
-        raise InputError(f"drive_frequency={drive_frequency:g} Hz is within 5 % of a mode "
-                         f"({', '.join(f'{f:g}' for f in f_modes)} Hz); drive off resonance")
     motion = detectors[0]
     fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
                                          input_range)
@@ -186,8 +252,7 @@ def charge_calibration(
     def body(rec):
         import bluesky.plan_stubs as bps
 
-        yield from set_feedback(app, None)
-        yield from set_setpoint(app, p)
+        yield from reach_state(app, chk.needs)  # pressure first, then feedback off
         el = app.electrodes
         # the thermal reference with the drive off: a line inside the fitted band would
         # bias the thermal area, and with it the mass

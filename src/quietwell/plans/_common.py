@@ -16,7 +16,6 @@ import numpy as np
 from bluesky.utils import short_uid
 
 from .. import __version__
-from .._errors import InputError, LimitError
 from .._plain import plain
 from ..live import LiveFitter
 from ..physics import AXES
@@ -24,7 +23,7 @@ from ..setup import Setup
 from ._derived_device import DerivedValues
 
 __all__ = ["Apparatus", "Recorder", "run_metadata", "set_feedback", "wait_lab",
-           "emit_summary", "check_pressures", "check_gain"]
+           "emit_summary"]
 
 
 @dataclass
@@ -86,35 +85,6 @@ def run_metadata(app: Apparatus, plan_name: str, plan_args: dict, md: dict | Non
         out["sim_truth"] = app.sim_truth()
     out.update(md or {})
     return out
-
-
-def check_pressures(app: Apparatus, pressures: Sequence[float], what: str = "pressures"
-                    ) -> list[float]:
-    """Every pressure (Pa) finite and inside the setup's limits, refused before any move."""
-    lim = app.setup.limits
-    out = []
-    for i, p in enumerate(pressures):
-        if isinstance(p, bool) or not isinstance(p, int | float) or not math.isfinite(p):
-            raise InputError(f"{what}[{i}]={p!r} is not a pressure; give numbers in Pa")
-        if not lim.pressure_min <= p <= lim.pressure_max:
-            raise LimitError(f"{what}[{i}]={p:g} Pa is outside the setup {app.setup.name!r} "
-                             f"limits [{lim.pressure_min:g}, {lim.pressure_max:g}] Pa; "
-                             "choose pressures inside them")
-        out.append(float(p))
-    if not out:
-        raise InputError(f"{what} is empty; give at least one pressure in Pa")
-    return out
-
-
-def check_gain(app: Apparatus, gain: float, what: str = "gain") -> float:
-    """A cold-damping gain (1/s) in (0, feedback_gain_max] of the setup."""
-    hi = app.setup.limits.feedback_gain_max
-    if isinstance(gain, bool) or not isinstance(gain, int | float) or not math.isfinite(gain):
-        raise InputError(f"{what}={gain!r} is not a gain; give a damping rate in 1/s")
-    if not 0 < gain <= hi:
-        raise LimitError(f"{what}={gain:g} 1/s is outside (0, {hi:g}] 1/s, the setup "
-                         f"{app.setup.name!r} limit; choose a gain inside it")
-    return float(gain)
 
 
 def set_feedback(app: Apparatus, gain: float | None, axes: Sequence[str] = AXES):

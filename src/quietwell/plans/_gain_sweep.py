@@ -9,7 +9,7 @@ from the setup's nominal values.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -31,9 +31,9 @@ from ..physics import (
     silica_index,
     sphere_mass,
 )
+from ..setup import Setup
 from ._common import (
     Apparatus,
-    check_gain,
     emit_summary,
     run_metadata,
     set_feedback,
@@ -42,14 +42,29 @@ from ._common import (
 )
 from ._derived_device import DerivedValues
 from ._runner import (
-    as_estimate,
+    DETECTOR_DEFAULTS,
+    clean_detector,
     configure_detector,
     nominal_calibration,
     nominal_mass,
     run_with_fitter,
+    take,
+)
+from ._state import (
+    ON,
+    Checked,
+    LabState,
+    clean_estimate,
+    clean_estimates,
+    clean_gain,
+    clean_int,
+    clean_positive,
+    clean_pressure,
+    reach_state,
+    record_seconds,
 )
 
-__all__ = ["gain_sweep", "predicted_cold_damping"]
+__all__ = ["gain_sweep", "predicted_cold_damping", "validate_gain_sweep"]
 
 
 def predicted_cold_damping(app: Apparatus, pressure: float) -> dict[str, tuple[float, float]]:
@@ -76,11 +91,46 @@ def predicted_cold_damping(app: Apparatus, pressure: float) -> dict[str, tuple[f
     return out
 
 
+def validate_gain_sweep(setup: Setup, params: Mapping[str, Any]) -> Checked:
+    """Clean the parameters of :func:`gain_sweep` (no device is opened)."""
+    a = take(params, "gain_sweep", required=("gains",),
+             optional={"pressure": None, "records_per_step": 2, "settle_periods": 30.0,
+                       "calibration": None, "mass": None, "stop_after_rises": 3,
+                       "stop_axes": AXES, **DETECTOR_DEFAULTS})
+    g = a["gains"]
+    if isinstance(g, str) or not isinstance(g, Sequence):
+        raise InputError(f"gains={g!r} is not a list of gains; give a list in 1/s")
+    gs = a["gains"] = [clean_gain(setup, x, f"gains[{i}]") for i, x in enumerate(g)]
+    if len(gs) < 3:
+        raise InputError(f"gains={list(g)!r}: the cold-damping model needs >= 3 gains")
+    if a["pressure"] is not None:
+        a["pressure"] = clean_pressure(setup, a["pressure"])
+    if a["calibration"] is not None:
+        a["calibration"] = clean_estimates(a["calibration"], "calibration")
+    if a["mass"] is not None:
+        a["mass"] = clean_estimate(a["mass"], "mass")
+    axes = a["stop_axes"]
+    if isinstance(axes, str) or not axes or any(x not in AXES for x in axes):
+        raise InputError(f"stop_axes={axes!r} must name axes among x, y, z")
+    a["stop_axes"] = list(axes)
+    a["records_per_step"] = clean_int(a["records_per_step"], "records_per_step", 1)
+    a["settle_periods"] = clean_positive(a["settle_periods"], "settle_periods", "damping times",
+                                         allow_zero=True)
+    a["stop_after_rises"] = clean_int(a["stop_after_rises"], "stop_after_rises", 1)
+    clean_detector(setup, a)
+    rec = a["records_per_step"] * record_seconds(setup, a["sample_rate"], a["record_length"])
+    t = sum(a["settle_periods"] / x + rec for x in gs)
+    needs = LabState(pressure=a["pressure"], feedback=ON, gain=gs[0], needs_charge=True)
+    leaves = LabState(pressure=a["pressure"], feedback=ON, gain=None)
+    return Checked("gain_sweep", a, t, needs=needs, leaves=leaves)
+
+
 def gain_sweep(
     detectors: Sequence[Any],
     gains: Sequence[float],
     *,
     apparatus: Apparatus,
+    pressure: float | None = None,
     records_per_step: int = 2,
     settle_periods: float = 30.0,
     calibration: Sequence[Estimate | float] | None = None,
@@ -92,7 +142,10 @@ def gain_sweep(
     input_range: float | None = None,
     md: dict | None = None,
 ):
-    """Step the cold-damping gain (1/s, all axes) through ``gains`` at the present pressure.
+    """Step the cold-damping gain (1/s, all axes) through ``gains`` at ``pressure`` (Pa).
+
+    Cold damping is engaged at the first gain before the pressure is moved; without
+    ``pressure`` the sweep runs at the present pressure.
 
     Each step waits ``settle_periods / gain`` of setup time, then records. The sweep stops
     early when the occupation summed over ``stop_axes`` rose ``stop_after_rises`` steps
@@ -101,16 +154,16 @@ def gain_sweep(
     used and the summary says so (``calibration_source``). Run name: ``gain_sweep``.
     """
     app = apparatus
-    gs = [check_gain(app, g, f"gains[{i}]") for i, g in enumerate(gains)]
-    if len(gs) < 3:
-        raise InputError(f"gains={list(gains)!r}: the cold-damping model needs >= 3 gains")
-    cal = nominal_calibration(app) if calibration is None else [
-        as_estimate(c, "calibration") for c in calibration]
-    if len(cal) != 3:
-        raise InputError(f"calibration must give 3 values (x, y, z), got {len(cal)}")
-    m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
-    if not stop_axes or any(a not in AXES for a in stop_axes):
-        raise InputError(f"stop_axes={stop_axes!r} must name axes among x, y, z")
+    chk = validate_gain_sweep(app.setup, dict(
+        gains=gains, pressure=pressure, records_per_step=records_per_step,
+        settle_periods=settle_periods, calibration=calibration, mass=mass,
+        stop_after_rises=stop_after_rises, stop_axes=stop_axes, sample_rate=sample_rate,
+        record_length=record_length, input_range=input_range))
+    gs, records_per_step = chk.params["gains"], chk.params["records_per_step"]
+    settle_periods, stop_axes = chk.params["settle_periods"], chk.params["stop_axes"]
+    stop_after_rises = chk.params["stop_after_rises"]
+    cal = nominal_calibration(app) if calibration is None else chk.params["calibration"]
+    m = nominal_mass(app) if mass is None else chk.params["mass"]
     motion = detectors[0]
     fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
                                          input_range)
@@ -119,13 +172,15 @@ def gain_sweep(
                             calibration_stderr=[c.stderr for c in cal], mass=m.value)
     fitter = LiveFitter(analyzer)
     md_ = run_metadata(app, "gain_sweep",
-                       {"gains": gs, "records_per_step": records_per_step,
+                       {"gains": gs, "pressure": chk.params["pressure"],
+                        "records_per_step": records_per_step,
                         "settle_periods": settle_periods,
                         "calibration": [c.value for c in cal], "mass": m.value}, md,
                        dimensions=[(["gain"], "primary")])
     values = DerivedValues("summary")
 
     def body(rec):
+        yield from reach_state(app, chk.needs)
         steps: list[tuple[float, list[dict]]] = []
         totals: list[float] = []
         rises = 0

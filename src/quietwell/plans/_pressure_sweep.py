@@ -9,7 +9,8 @@ not change with pressure while the motion is thermal).
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from dataclasses import replace
 from typing import Any
 
 import bluesky.plan_stubs as bps
@@ -27,10 +28,9 @@ from ..physics import (
     radius_from_slope,
     thermal_calibration,
 )
+from ..setup import Setup
 from ._common import (
     Apparatus,
-    check_gain,
-    check_pressures,
     emit_summary,
     run_metadata,
     set_feedback,
@@ -39,9 +39,23 @@ from ._common import (
     weighted_mean_chi2,
 )
 from ._derived_device import DerivedValues
-from ._runner import configure_detector, run_with_fitter
+from ._runner import DETECTOR_DEFAULTS, clean_detector, configure_detector, run_with_fitter, take
+from ._state import (
+    ANY,
+    OFF,
+    ON,
+    Checked,
+    LabState,
+    clean_gain,
+    clean_int,
+    clean_positive,
+    clean_pressures,
+    pressure_move_seconds,
+    reach_state,
+    record_seconds,
+)
 
-__all__ = ["pressure_sweep", "summarize_pressure_sweep"]
+__all__ = ["pressure_sweep", "summarize_pressure_sweep", "validate_pressure_sweep"]
 
 
 def pressure_sweep(
@@ -82,20 +96,15 @@ def pressure_sweep(
     """
     app = apparatus
     setup = app.setup
-    ps = check_pressures(app, pressures)
-    diffs = np.diff(ps)
-    if ps and not (np.all(diffs < 0) or np.all(diffs > 0)):
-        raise InputError(f"pressures={list(pressures)!r} must be strictly monotonic (a "
-                         "pump-down or a bleed-up); sort them")
-    if not isinstance(records_per_step, int) or records_per_step < 1:
-        raise InputError(f"records_per_step={records_per_step!r} must be an integer >= 1")
-    gain = check_gain(app, feedback_gain, "feedback_gain")
-    rho = setup.particle.density if density is None else float(density)
+    chk = validate_pressure_sweep(setup, dict(
+        pressures=pressures, records_per_step=records_per_step, settle_time=settle_time,
+        feedback_gain=feedback_gain, engage_damping=engage_damping, density=density,
+        sample_rate=sample_rate, record_length=record_length, input_range=input_range))
+    ps, gain = chk.params["pressures"], chk.params["feedback_gain"]
+    records_per_step, settle_time = chk.params["records_per_step"], chk.params["settle_time"]
+    rho, engage_damping = chk.params["density"], chk.params["engage_damping"]
     gas = GASES[setup.vacuum.gas]
     loss = setup.trap.loss_pressure
-    if engage_damping is None:
-        engage_damping = float(epstein_damping(setup.particle.radius, setup.particle.density,
-                                               loss, setup.temperature, gas))
     plan_args = {"pressures": ps, "records_per_step": records_per_step,
                  "settle_time": settle_time, "feedback_gain": gain,
                  "engage_damping": engage_damping, "density": rho}
@@ -108,7 +117,8 @@ def pressure_sweep(
     values = DerivedValues("summary")
 
     def body(rec):
-        feedback_on = False
+        yield from reach_state(app, chk.needs)
+        feedback_on = chk.needs.feedback == ON
         step_flags: list[bool] = []
         for p in ps:
             last = rec.fits[-records_per_step:] if rec.fits else []
@@ -131,6 +141,46 @@ def pressure_sweep(
         return values.values
 
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))
+
+
+def validate_pressure_sweep(setup: Setup, params: Mapping[str, Any]) -> Checked:
+    """Clean the parameters of :func:`pressure_sweep` (no device is opened)."""
+    a = take(params, "pressure_sweep", required=("pressures",),
+             optional={"records_per_step": 2, "settle_time": 1.0, "feedback_gain": 2000.0,
+                       "engage_damping": None, "density": None, **DETECTOR_DEFAULTS})
+    ps = clean_pressures(setup, a["pressures"])
+    diffs = np.diff(ps)
+    if not (np.all(diffs < 0) or np.all(diffs > 0)):
+        raise InputError(f"pressures={list(a['pressures'])!r} must be strictly monotonic (a "
+                         "pump-down or a bleed-up); sort them")
+    a["pressures"] = ps
+    a["records_per_step"] = clean_int(a["records_per_step"], "records_per_step", 1)
+    a["settle_time"] = clean_positive(a["settle_time"], "settle_time", "s", allow_zero=True)
+    gain = a["feedback_gain"] = clean_gain(setup, a["feedback_gain"], "feedback_gain")
+    a["density"] = (setup.particle.density if a["density"] is None
+                    else clean_positive(a["density"], "density", "kg/m**3"))
+    loss = setup.trap.loss_pressure
+    if a["engage_damping"] is None:
+        a["engage_damping"] = float(epstein_damping(
+            setup.particle.radius, setup.particle.density, loss, setup.temperature,
+            GASES[setup.vacuum.gas]))
+    else:
+        a["engage_damping"] = clean_positive(a["engage_damping"], "engage_damping", "1/s")
+    clean_detector(setup, a)
+    per_step = (a["records_per_step"] * record_seconds(setup, a["sample_rate"],
+                                                       a["record_length"]) + a["settle_time"])
+    t = len(ps) * per_step + sum(pressure_move_seconds(p0, p1) for p0, p1 in
+                                 zip(ps[:-1], ps[1:], strict=True))
+    # the sweep starts at its first pressure: with cold damping on if that is below the
+    # loss pressure, else off (its thermalization check needs feedback-off records)
+    needs = (LabState(pressure=ps[0], feedback=ON, gain=gain, needs_charge=True)
+             if ps[0] < loss else LabState(pressure=ps[0], feedback=OFF))
+    below = min(ps) < loss
+    leaves = LabState(pressure=ps[-1], feedback=ON if below else ANY,
+                      gain=gain if below else None)
+    if below:
+        needs = replace(needs, needs_charge=True)
+    return Checked("pressure_sweep", a, t, needs=needs, leaves=leaves)
 
 
 def set_setpoint(app: Apparatus, p: float):

@@ -11,20 +11,20 @@ pressure.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import bluesky.plan_stubs as bps
 import numpy as np
 
-from .._errors import InputError
+from .._errors import InputError, LimitError
 from ..analysis._derived import fit_heating_rate
 from ..live import LiveFitter, ModeAnalyzer
 from ..physics import AXES, GASES, Estimate, epstein_damping, gas_heating_rate
+from ..setup import Setup
 from ._common import (
     Apparatus,
     Recorder,
-    check_gain,
     emit_summary,
     run_metadata,
     set_feedback,
@@ -33,14 +33,58 @@ from ._common import (
 from ._derived_device import DerivedValues
 from ._gain_sweep import predicted_cold_damping
 from ._runner import (
-    as_estimate,
+    clean_detector,
     configure_detector,
     nominal_calibration,
     nominal_mass,
     run_with_fitter,
+    take,
+)
+from ._state import (
+    ON,
+    Checked,
+    LabState,
+    clean_estimate,
+    clean_estimates,
+    clean_gain,
+    clean_int,
+    clean_positive,
+    clean_pressure,
+    reach_state,
 )
 
-__all__ = ["reheating_cycles"]
+__all__ = ["reheating_cycles", "validate_reheating_cycles"]
+
+
+def validate_reheating_cycles(setup: Setup, params: Mapping[str, Any]) -> Checked:
+    """Clean the parameters of :func:`reheating_cycles` (no device is opened)."""
+    a = take(params, "reheating_cycles", required=("cycles", "feedback_gain", "off_time"),
+             optional={"pressure": None, "on_time": None, "envelope_bandwidth": 2000.0,
+                       "calibration": None, "mass": None, "n_boot": 400, "sample_rate": None,
+                       "input_range": None})
+    a["cycles"] = clean_int(a["cycles"], "cycles", 3)
+    gain = a["feedback_gain"] = clean_gain(setup, a["feedback_gain"], "feedback_gain")
+    a["off_time"] = clean_positive(a["off_time"], "off_time", "s")
+    a["on_time"] = (30.0 / gain if a["on_time"] is None
+                    else clean_positive(a["on_time"], "on_time", "s"))
+    a["envelope_bandwidth"] = clean_positive(a["envelope_bandwidth"], "envelope_bandwidth", "Hz")
+    if a["pressure"] is not None:
+        a["pressure"] = clean_pressure(setup, a["pressure"])
+    if a["calibration"] is not None:
+        a["calibration"] = clean_estimates(a["calibration"], "calibration")
+    if a["mass"] is not None:
+        a["mass"] = clean_estimate(a["mass"], "mass")
+    a["n_boot"] = clean_int(a["n_boot"], "n_boot", 10)
+    clean_detector(setup, a)
+    fs = a["sample_rate"] or setup.detector.sample_rate
+    n = int(round(a["off_time"] * fs))
+    if not 1024 <= n <= setup.limits.record_length_max:
+        raise LimitError(f"off_time={a['off_time']:g} s at {fs:g} Hz is a record of {n} samples,"
+                         f" outside [1024, {setup.limits.record_length_max}] (setup "
+                         f"{setup.name!r}); choose another off_time or sample_rate")
+    t = a["cycles"] * (a["on_time"] + a["off_time"])
+    state = LabState(pressure=a["pressure"], feedback=ON, gain=gain, needs_charge=True)
+    return Checked("reheating_cycles", a, t, needs=state, leaves=state)
 
 
 def reheating_cycles(
@@ -49,6 +93,7 @@ def reheating_cycles(
     *,
     apparatus: Apparatus,
     feedback_gain: float,
+    pressure: float | None = None,
     off_time: float,
     on_time: float | None = None,
     envelope_bandwidth: float = 2000.0,
@@ -59,7 +104,9 @@ def reheating_cycles(
     input_range: float | None = None,
     md: dict | None = None,
 ):
-    """Repeat ``cycles`` reheating cycles at the present pressure.
+    """Repeat ``cycles`` reheating cycles at ``pressure`` (Pa; default: the present one).
+
+    Cold damping is engaged at ``feedback_gain`` before the pressure is moved.
 
     Parameters
     ----------
@@ -79,15 +126,16 @@ def reheating_cycles(
     ``pressure`` (Pa, mean gauge reading with its spread). Run name: ``reheating_cycles``.
     """
     app = apparatus
-    if not isinstance(cycles, int) or cycles < 3:
-        raise InputError(f"cycles={cycles!r} must be an integer >= 3")
-    gain = check_gain(app, feedback_gain, "feedback_gain")
-    if not (isinstance(off_time, int | float) and off_time > 0):
-        raise InputError(f"off_time={off_time!r} must be a positive time in s")
-    on = 30.0 / gain if on_time is None else float(on_time)
-    cal = nominal_calibration(app) if calibration is None else [
-        as_estimate(c, "calibration") for c in calibration]
-    m = nominal_mass(app) if mass is None else as_estimate(mass, "mass")
+    chk = validate_reheating_cycles(app.setup, dict(
+        cycles=cycles, pressure=pressure, feedback_gain=feedback_gain, off_time=off_time,
+        on_time=on_time, envelope_bandwidth=envelope_bandwidth, calibration=calibration,
+        mass=mass, n_boot=n_boot, sample_rate=sample_rate, input_range=input_range))
+    cycles, gain, off_time = chk.params["cycles"], chk.params["feedback_gain"], chk.params[
+        "off_time"]
+    on, envelope_bandwidth = chk.params["on_time"], chk.params["envelope_bandwidth"]
+    n_boot = chk.params["n_boot"]
+    cal = nominal_calibration(app) if calibration is None else chk.params["calibration"]
+    m = nominal_mass(app) if mass is None else chk.params["mass"]
     motion = detectors[0]
     rate = yield from configure_detector(app, motion, sample_rate, None, input_range)
     fs = rate[0]
@@ -100,7 +148,8 @@ def reheating_cycles(
                             envelope_window=window, record_length=n)
     fitter = LiveFitter(analyzer)
     md_ = run_metadata(app, "reheating_cycles",
-                       {"cycles": cycles, "feedback_gain": gain, "off_time": n / fs,
+                       {"cycles": cycles, "pressure": chk.params["pressure"],
+                        "feedback_gain": gain, "off_time": n / fs,
                         "on_time": on, "envelope_bandwidth": envelope_bandwidth,
                         "calibration": [c.value for c in cal], "mass": m.value}, md,
                        dimensions=[(["seq_num"], "primary")])
@@ -124,6 +173,7 @@ def reheating_cycles(
     rec_ref: list = []
 
     def body(rec):
+        yield from reach_state(app, chk.needs)
         rec_ref.append(rec)
         seen = 0
         for _ in range(cycles):

@@ -2,20 +2,69 @@
 
 from __future__ import annotations
 
-import math
-from collections.abc import Callable, Generator, Sequence
+from collections.abc import Callable, Generator, Mapping, Sequence
 from typing import Any
 
 import bluesky.plan_stubs as bps
 import bluesky.preprocessors as bpp
 
-from .._errors import InputError
+from .._errors import InputError, LimitError
 from ..live import LiveFitter
 from ..physics import Estimate, sphere_mass
 from ._common import Apparatus, Recorder
 
 __all__ = ["run_with_fitter", "configure_detector", "nominal_mass", "nominal_calibration",
-           "as_estimate"]
+           "take", "clean_detector", "DETECTOR_DEFAULTS"]
+
+#: Detector settings every recording plan accepts (None: keep the detector's setting).
+DETECTOR_DEFAULTS: dict[str, Any] = {"sample_rate": None, "record_length": None,
+                                     "input_range": None}
+
+
+def take(params: Mapping[str, Any], plan: str, *, required: Sequence[str] = (),
+         optional: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """The parameters of ``plan``: every required one present, no unknown one.
+
+    Returns a new dict with the defaults of ``optional`` filled in.
+    """
+    optional = optional or {}
+    allowed = [*required, *optional]
+    for key in params:
+        if key not in allowed:
+            raise InputError(f"{plan}: {key!r} is not a parameter of this step; allowed are "
+                             f"{', '.join(allowed)}; fix the spelling or remove it")
+    for key in required:
+        if key not in params or params[key] is None:
+            raise InputError(f"{plan}: parameter {key!r} is missing; add it")
+    out = dict(optional)
+    out.update({k: v for k, v in params.items()})
+    return out
+
+
+def clean_detector(setup: Any, a: dict[str, Any]) -> None:
+    """Check ``sample_rate`` (Hz), ``record_length`` (samples) and ``input_range`` (V) of
+    ``a`` in place against the setup's limits (None keeps the detector's setting)."""
+    lim = setup.limits
+    if a.get("sample_rate") is not None:
+        fs = a["sample_rate"]
+        if isinstance(fs, bool) or not isinstance(fs, int | float) or not 0 < fs <= \
+                lim.sample_rate_max:
+            raise LimitError(f"sample_rate={fs!r} Hz is outside (0, {lim.sample_rate_max:g}] Hz,"
+                             f" the setup {setup.name!r} limit; choose a rate inside it")
+        a["sample_rate"] = float(fs)
+    if a.get("record_length") is not None:
+        n = a["record_length"]
+        if isinstance(n, bool) or not isinstance(n, int) or not 1024 <= n <= \
+                lim.record_length_max:
+            raise LimitError(f"record_length={n!r} samples is outside [1024, "
+                             f"{lim.record_length_max}], the setup {setup.name!r} limit; "
+                             "choose an integer inside it")
+    if a.get("input_range") is not None:
+        r = a["input_range"]
+        if isinstance(r, bool) or not isinstance(r, int | float) or not 0 < r <= 1e3:
+            raise InputError(f"input_range={r!r} V must be a positive voltage (the "
+                             "digitiser's +- range); give one in V")
+        a["input_range"] = float(r)
 
 
 def run_with_fitter(app: Apparatus, detectors: Sequence[Any], fitter: LiveFitter, md: dict,
@@ -72,15 +121,6 @@ def configure_detector(app: Apparatus, detector: Any, sample_rate: float | None,
     rate = yield from bps.rd(detector.sample_rate)
     length = yield from bps.rd(detector.record_length)
     return float(rate), int(length)
-
-
-def as_estimate(value: Estimate | float, what: str) -> Estimate:
-    """An :class:`Estimate` from an Estimate or a plain number (error unknown: 0)."""
-    if isinstance(value, Estimate):
-        return value
-    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-        raise InputError(f"{what}={value!r} is not a number; give a value in SI units")
-    return Estimate(float(value), 0.0)
 
 
 def nominal_mass(app: Apparatus) -> Estimate:

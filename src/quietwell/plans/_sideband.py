@@ -8,7 +8,7 @@ same events, so the calibrated occupation can be compared.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -16,18 +16,55 @@ import numpy as np
 from .._errors import InputError
 from ..live import CombinedAnalyzer, LiveFitter, ModeAnalyzer, SidebandAnalyzer
 from ..physics import AXES, Estimate, sideband_occupation
+from ..setup import Setup
 from ._common import (
     Apparatus,
-    check_gain,
     emit_summary,
     run_metadata,
-    set_feedback,
     wait_lab,
 )
 from ._derived_device import DerivedValues
-from ._runner import configure_detector, run_with_fitter
+from ._runner import clean_detector, configure_detector, run_with_fitter, take
+from ._state import (
+    ON,
+    Checked,
+    LabState,
+    clean_gain,
+    clean_int,
+    clean_positive,
+    clean_pressure,
+    reach_state,
+    record_seconds,
+)
 
-__all__ = ["sideband_thermometry"]
+__all__ = ["sideband_thermometry", "validate_sideband_thermometry"]
+
+
+def validate_sideband_thermometry(setup: Setup, params: Mapping[str, Any]) -> Checked:
+    """Clean the parameters of :func:`sideband_thermometry` (no device is opened)."""
+    a = take(params, "sideband_thermometry", required=("records",),
+             optional={"axis": "z", "pressure": None, "feedback_gain": None,
+                       "settle_periods": 30.0, "input_range": None})
+    if setup.detector.heterodyne_carrier <= 0:
+        raise InputError(f"sideband_thermometry needs a heterodyne detector, and setup "
+                         f"{setup.name!r} has none ([detector] heterodyne_carrier = 0); "
+                         "remove the step or use a setup with heterodyne detection")
+    if a["axis"] not in AXES:
+        raise InputError(f"axis={a['axis']!r} must be one of x, y, z")
+    a["records"] = clean_int(a["records"], "records", 1)
+    if a["pressure"] is not None:
+        a["pressure"] = clean_pressure(setup, a["pressure"])
+    gain = None
+    if a["feedback_gain"] is not None:
+        gain = a["feedback_gain"] = clean_gain(setup, a["feedback_gain"], "feedback_gain")
+    a["settle_periods"] = clean_positive(a["settle_periods"], "settle_periods", "damping times",
+                                         allow_zero=True)
+    clean_detector(setup, a)
+    t = a["records"] * record_seconds(setup, None, None) + (
+        a["settle_periods"] / gain if gain else 0.0)
+    state = (LabState(pressure=a["pressure"], feedback=ON, gain=gain, needs_charge=True)
+             if gain is not None else LabState(pressure=a["pressure"]))
+    return Checked("sideband_thermometry", a, t, needs=state, leaves=state)
 
 
 def sideband_thermometry(
@@ -36,6 +73,7 @@ def sideband_thermometry(
     *,
     apparatus: Apparatus,
     axis: str = "z",
+    pressure: float | None = None,
     feedback_gain: float | None = None,
     settle_periods: float = 30.0,
     input_range: float | None = None,
@@ -44,7 +82,8 @@ def sideband_thermometry(
     """Record ``records`` heterodyne records and derive the occupation of ``axis``.
 
     ``detectors`` must hold the heterodyne detector (key prefix ``het_``) and may hold
-    the motion detector. With ``feedback_gain`` (1/s) the cold damping is set first.
+    the motion detector. With ``feedback_gain`` (1/s) the cold damping is set first, then
+    the pressure is moved to ``pressure`` (Pa; default: the present one).
     Summary: ``occupation`` (quanta) of ``axis`` with its error, from the ratio of the
     sideband areas summed over all records. Run name: ``sideband_thermometry``.
     """
@@ -53,11 +92,11 @@ def sideband_thermometry(
         raise InputError("sideband_thermometry needs the heterodyne detector among detectors;"
                          " this setup has none" if app.heterodyne is None else
                          "pass apparatus.heterodyne in detectors")
-    if axis not in AXES:
-        raise InputError(f"axis={axis!r} must be one of x, y, z")
-    if not isinstance(records, int) or records < 1:
-        raise InputError(f"records={records!r} must be an integer >= 1")
-    gain = None if feedback_gain is None else check_gain(app, feedback_gain, "feedback_gain")
+    chk = validate_sideband_thermometry(app.setup, dict(
+        records=records, pressure=pressure, axis=axis, feedback_gain=feedback_gain,
+        settle_periods=settle_periods, input_range=input_range))
+    records, axis, gain = chk.params["records"], chk.params["axis"], chk.params["feedback_gain"]
+    settle_periods = chk.params["settle_periods"]
     setup = app.setup
     het = app.heterodyne
     fs, n = yield from configure_detector(app, het, None, None, input_range)
@@ -68,12 +107,13 @@ def sideband_thermometry(
         parts.append(ModeAnalyzer(setup.trap.frequencies, nperseg=max(1024, n_m // 8)))
     fitter = LiveFitter(CombinedAnalyzer(parts))
     md_ = run_metadata(app, "sideband_thermometry",
-                       {"records": records, "axis": axis, "feedback_gain": gain}, md)
+                       {"records": records, "axis": axis, "feedback_gain": gain,
+                        "pressure": chk.params["pressure"]}, md)
     values = DerivedValues("summary")
 
     def body(rec):
+        yield from reach_state(app, chk.needs)
         if gain is not None:
-            yield from set_feedback(app, gain)
             yield from wait_lab(app, settle_periods / gain)
         for _ in range(records):
             yield from rec.record()
