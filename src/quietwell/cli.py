@@ -340,6 +340,159 @@ def _recover(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# --------------------------------------------------------------------------
+# campaigns: check, run
+
+
+def _setup_of(args) -> tuple:
+    from quietwell._profile import find_profile
+    from quietwell.setup import load_setup
+
+    path = find_profile(args.setup)
+    if path.suffix == ".toml" and path.exists() and "[campaign]" in path.read_text(
+            encoding="utf-8", errors="replace"):
+        from quietwell import InputError
+
+        raise InputError(f"--setup {args.setup}: this is a campaign file, not a setup; give a "
+                         "setup profile (a folder of profiles/ or its setup.toml) with --setup")
+    return path, load_setup(path)
+
+
+@subcommand("check", help="validate a campaign on a setup and show what it would do")
+def _check_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("campaign", metavar="CAMPAIGN", help="campaign file (.toml)")
+    parser.add_argument("--setup", required=True, metavar="PROFILE",
+                        help="setup profile name or folder (e.g. amber)")
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+
+
+@_check_arguments.runner
+def _check(args: argparse.Namespace) -> int:
+    from quietwell.campaign import check_campaign, load_campaign
+
+    camp = load_campaign(args.campaign)
+    _, setup = _setup_of(args)
+    checked = check_campaign(camp, setup)
+    if args.json:
+        print(json.dumps(_checked_json(checked), default=_json_default))
+    else:
+        print(_checked_table(checked))
+    return EXIT_OK
+
+
+def _json_default(obj):
+    from quietwell.physics import Estimate
+
+    if isinstance(obj, Estimate):
+        return {"value": obj.value, "stderr": obj.stderr}
+    raise TypeError(type(obj).__name__)
+
+
+def _checked_json(checked) -> dict:
+    return {"campaign": checked.campaign.name, "campaign_sha256": checked.campaign.sha256,
+            "setup": checked.setup.name, "setup_sha256": checked.setup.sha256,
+            "steps": [{"index": s.step.index, "name": s.step.id, "plan_name": s.step.plan,
+                       "parameters": s.checked.params, "from_results": list(s.deferred),
+                       "duration_s": s.move_s + s.checked.duration_s,
+                       "needs": s.checked.needs.as_dict(), "leaves": s.after.as_dict()}
+                      for s in checked.steps],
+            "duration_s": checked.duration_s}
+
+
+_SHOW_KIND = {"pressure": "pressure", "pressures": "pressure", "gains": "rate",
+              "feedback_gain": "rate", "engage_damping": "rate", "drive_frequency": "frequency",
+              "sample_rate": "frequency", "drive_amplitude": "voltage", "input_range": "voltage",
+              "off_time": "time", "on_time": "time", "settle_time": "time"}
+
+
+def _show(key: str, value) -> str:
+    from quietwell.physics import Estimate
+    from quietwell.setup._units import display
+
+    kind = _SHOW_KIND.get(key)
+    if isinstance(value, Estimate):
+        return f"{value.value:.4g} ± {value.stderr:.2g}"
+    if isinstance(value, list):
+        if len(value) > 6:
+            return f"[{_show(key, value[0])} ... {_show(key, value[-1])}] ({len(value)})"
+        return "[" + ", ".join(_show(key, v) for v in value) + "]"
+    if kind and isinstance(value, float):
+        return display(value, kind)
+    return str(value)
+
+
+def _checked_table(checked) -> str:
+    lines = [f"campaign {checked.campaign.name!r} on setup {checked.setup.name!r}: "
+             f"{len(checked.steps)} steps, about {_hms(checked.duration_s)} of lab time "
+             "(estimate; analysis runs beside it)"]
+    for s in checked.steps:
+        lines.append(f"{s.step.index:>3}  {s.step.id:<18} {s.step.plan:<22} "
+                     f"{_hms(s.move_s + s.checked.duration_s):>9}  starts at "
+                     f"{_hms(s.start_s)}")
+        from quietwell.plans import STEPS
+
+        for k in STEPS[s.step.plan].params:
+            v = s.checked.params.get(k)
+            if v is None:
+                continue
+            tag = "  (from an earlier step; checked with a stand-in)" if k in s.deferred else ""
+            lines.append(f"       {k} = {_show(k, v)}{tag}")
+    lines.append("nothing was moved and no device was opened")
+    return "\n".join(lines)
+
+
+def _hms(seconds: float) -> str:
+    s = int(round(seconds))
+    return f"{s // 3600}:{s // 60 % 60:02d}:{s % 60:02d}"
+
+
+@subcommand("run", help="run a campaign on a setup into a data directory, or resume one")
+def _run_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("campaign", metavar="CAMPAIGN", nargs="?", help="campaign file (.toml)")
+    parser.add_argument("--setup", metavar="PROFILE", help="setup profile name or folder")
+    parser.add_argument("--data-dir", required=True, metavar="DIR",
+                        help="data directory of the embedded store (created if missing)")
+    parser.add_argument("--resume", action="store_true",
+                        help="continue the interrupted campaign in DIR")
+
+
+@_run_arguments.runner
+def _run(args: argparse.Namespace) -> int:
+    from quietwell import InputError
+    from quietwell.campaign import (
+        CAUTIONS,
+        CampaignInterrupted,
+        Progress,
+        check_campaign,
+        load_campaign,
+        resume_campaign,
+        run_campaign,
+    )
+
+    if args.resume:
+        if args.campaign or args.setup:
+            raise InputError("quietwell run --resume takes only --data-dir (the campaign and "
+                             "its setup are in the ledger); drop CAMPAIGN and --setup")
+    elif not args.campaign or not args.setup:
+        raise InputError("quietwell run needs CAMPAIGN and --setup PROFILE (or --resume "
+                         "--data-dir DIR); see 'quietwell run --help'")
+    print(CAUTIONS, file=sys.stderr)
+    try:
+        if args.resume:
+            out = resume_campaign(args.data_dir, progress=Progress())
+        else:
+            path, setup = _setup_of(args)
+            camp = load_campaign(args.campaign)
+            check_campaign(camp, setup)  # refused here, before anything is opened
+            out = run_campaign(camp, setup, args.data_dir, progress=Progress())
+    except CampaignInterrupted as exc:
+        print(f"quietwell run: {exc}", file=sys.stderr)
+        return exc.exit_code
+    print(f"campaign {out.campaign_id} completed: {len(out.uids)} steps; ledger and log in "
+          f"{out.folder}")
+    return EXIT_OK
+
+
 if __name__ == "__main__":
     # Run the registry of the imported module, where other modules register too.
     from quietwell.cli import main as _main

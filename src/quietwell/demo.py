@@ -21,35 +21,28 @@ import numpy as np
 
 from ._errors import QuietwellError
 from .analysis._derived import fit_line
-from .physics import AXES, MBAR, Estimate
+from .physics import AXES, MBAR
 
 __all__ = ["DemoConfig", "run_demo", "format_report"]
 
 
+#: The campaign files the demo runs (``campaigns/`` of the source checkout).
+CAMPAIGNS = Path(__file__).resolve().parents[2] / "campaigns"
+
+
 @dataclass(frozen=True)
 class DemoConfig:
-    """Sizes of the demo; ``quick()`` is the reduced version the tests run."""
+    """What the demo runs: a campaign file on a setup profile.
+
+    ``quick()`` is the reduced campaign the tests run.
+    """
 
     profile: str = "amber"
-    reheating_cycles: int = 200
-    reheating_pressures_mbar: tuple[float, ...] = (1e-6, 1e-7, 1e-8)
-    sweep_pressures_mbar: tuple[float, ...] = (
-        10, 7, 5, 3.5, 2.5, 1.6, 0.8, 0.4, 0.2, 0.1, 0.03, 1e-2, 1e-3, 1e-4, 1e-5, 1e-6,
-        1e-7, 1e-8)
-    gains: tuple[float, ...] = tuple(float(g) for g in np.geomspace(1.5e3, 1.2e5, 12))
-    sideband_gains: tuple[float, ...] = (3e3, 8e3, 2.7e4)
-    sample_rate: float = 1e6
-    record_length: int = 2**19
-    short_record: int = 2**17
-    off_time: float = 0.01
-    seed: int | None = None
+    campaign: Path = CAMPAIGNS / "characterise.toml"
 
     @classmethod
     def quick(cls) -> DemoConfig:
-        return cls(reheating_cycles=40, reheating_pressures_mbar=(1e-6, 1e-8),
-                   sweep_pressures_mbar=(10, 5, 3, 2, 1.4, 0.5, 1e-3, 1e-8),
-                   gains=tuple(float(g) for g in np.geomspace(2e3, 1.2e5, 8)),
-                   sideband_gains=(8e3,))
+        return cls(campaign=CAMPAIGNS / "characterise-quick.toml")
 
 
 @dataclass
@@ -88,86 +81,46 @@ class _Timer:
         self.total += time.perf_counter() - self._t0
 
 
-def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=print) -> DemoResult:
-    """Run the characterisation of ``config`` into the embedded store at ``data_dir``."""
-    from bluesky import RunEngine
-
-    from ._profile import build_apparatus, connect_apparatus, find_profile
-    from .plans import (
-        charge_calibration,
-        gain_sweep,
-        pressure_sweep,
-        reheating_cycles,
-        sideband_thermometry,
-        thermal_calibration,
-    )
-    from .setup import load_setup
-    from .store import EmbeddedStore
+def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=print,
+             progress=None) -> DemoResult:
+    """Run the campaign of ``config`` into the embedded store at ``data_dir``, through the
+    same runner as ``quietwell run``, and compare each result with the simulation's truth."""
+    from .campaign import load_campaign, run_campaign
+    from .session import open_session
 
     cfg = config or DemoConfig()
     t_start = time.perf_counter()
-    setup = load_setup(find_profile(cfg.profile))
+    camp = load_campaign(cfg.campaign)
     result = DemoResult(Path(data_dir).expanduser().resolve())
-    with EmbeddedStore(data_dir) as store:
-        RE = RunEngine({}, context_managers=[], call_returns_result=True)
+    truths: dict[str, object] = {}
+    with open_session(cfg.profile, data_dir) as session:
+        setup, store, lab = session.setup, session.store, session.lab
+        if lab is None:
+            raise QuietwellError(f"setup {setup.name!r} is not simulated; the demo compares "
+                                 "with the simulation's truth, so it needs a setup of kind sim "
+                                 "(use quietwell run for hardware)")
         store_timer = _Timer()
-        RE.subscribe(store_timer.wrap(store.writer))
-        app = build_apparatus(setup, store.raw_dir)
-        connect_apparatus(app)
-        lab = app.extras["lab"]
+        store.writer = store_timer.wrap(store.writer)
         sim_timer = _Timer()
         lab.record = sim_timer.wrap(lab.record)
         lab.advance = sim_timer.wrap(lab.advance)
-        det = [app.detector]
         catalog_timer = _Timer()
+        t_step = [time.perf_counter()]
 
-        truths: dict[str, object] = {}
-
-        def run(name, plan):
-            # The plan returns its summary; the catalog meanwhile finishes the run on
-            # the other core and every run is read back from it at the end.
-            t0 = time.perf_counter()
-            res = RE(plan)
-            (uid,) = res.run_start_uids
+        def on_step(step, uid, summary, _session):
+            # the plan returned its summary; the catalog meanwhile finishes the run on
+            # the other core, and every run is read back from it at the end
+            name = _run_name(step, summary)
             truths[name] = lab.truth()
-            summary = {k: _first(v) for k, v in (res.plan_result or {}).items()}
             result.uids[name] = uid
             result.summaries[name] = summary
-            log(f"  {name:<28s} {time.perf_counter() - t0:6.1f} s  uid {uid[:8]}")
-            return summary
+            log(f"  {name:<28s} {time.perf_counter() - t_step[0]:6.1f} s  uid {uid[:8]}")
+            t_step[0] = time.perf_counter()
 
-        log(f"quietwell demo: setup {setup.name!r} ({setup.lab}), data in {result.data_dir}")
-        common = dict(apparatus=app, sample_rate=cfg.sample_rate)
-        charge = run("charge_calibration", charge_calibration(
-            det, [0, -1, -1, -1, -1], pressure=3 * MBAR,
-            drive_frequency=0.85 * setup.trap.frequencies[0], drive_amplitude=8.0,
-            records_per_step=5, record_length=cfg.short_record, input_range=2.0, **common))
-        m_charge = Estimate(charge["mass"], charge["mass_stderr"])
-        thermal = run("thermal_calibration", thermal_calibration(
-            det, 3 * MBAR, records=4, mass=m_charge, record_length=cfg.record_length,
-            input_range=2.0, **common))
-        cal = [Estimate(thermal[f"calibration_{a}"], thermal[f"calibration_{a}_stderr"])
-               for a in AXES]
-        run("pressure_sweep", pressure_sweep(
-            det, [p * MBAR for p in cfg.sweep_pressures_mbar], records_per_step=2,
-            feedback_gain=2000.0, record_length=cfg.record_length, input_range=2.0,
-            **common))
-        gains = run("gain_sweep", gain_sweep(
-            det, list(cfg.gains), calibration=cal, mass=m_charge, records_per_step=2,
-            record_length=cfg.short_record, input_range=0.02, **common))
-        heat_runs = {}
-        g_cool = gains.get("optimal_gain", math.nan)
-        g_cool = 2e4 if not math.isfinite(g_cool) else float(min(max(g_cool, 5e3), 1e5))
-        for p in sorted(cfg.reheating_pressures_mbar, reverse=True):  # ends pumped down
-            RE(_move(app, p * MBAR, g_cool))
-            heat_runs[p] = run(f"reheating_cycles@{p:g}mbar", reheating_cycles(
-                det, cfg.reheating_cycles, feedback_gain=g_cool, off_time=cfg.off_time,
-                calibration=cal, mass=m_charge, input_range=0.02, **common))
-        if app.heterodyne is not None:
-            for g in cfg.sideband_gains:
-                run(f"sideband_thermometry@{g:g}", sideband_thermometry(
-                    [app.heterodyne], 8, apparatus=app, axis="x", feedback_gain=g,
-                    input_range=0.2))
+        log(f"quietwell demo: campaign {camp.name!r} on setup {setup.name!r} ({setup.lab}), "
+            f"data in {result.data_dir}")
+        run_campaign(camp, setup, data_dir, session=session, on_step=on_step,
+                     progress=progress)
         with catalog_timer:
             store.wait()  # the catalog holds every run
         fits_seconds = _read_back(store.client, result)
@@ -179,6 +132,8 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
                         "recoil_heating": [float(v) for v in truth.recoil_heating],
                         "gas_heating_per_pa": [float(v) / truth.pressure
                                                for v in truth.gas_heating]}
+        heat_runs = {n: s for n, s in result.summaries.items()
+                     if n.startswith("reheating_cycles@")}
         result.summaries["heating_vs_pressure"] = _heating_vs_pressure(heat_runs)
         result.truth["per_run"] = {name: _truth_row(t) for name, t in truths.items()}
     result.timing = {"total": time.perf_counter() - t_start, "simulation": sim_timer.total,
@@ -188,6 +143,19 @@ def run_demo(data_dir: str | Path, config: DemoConfig | None = None, *, log=prin
         {"uids": result.uids, "summaries": result.summaries, "truth": result.truth,
          "timing": result.timing}, indent=1, default=float))
     return result
+
+
+def _run_name(step, summary: dict) -> str:
+    """The table's name of a run: its plan, with the pressure or gain where it repeats."""
+    if step.plan == "reheating_cycles":
+        p = step.params.get("pressure")
+        return f"reheating_cycles@{p / MBAR:g}mbar" if isinstance(p, float) else \
+            f"reheating_cycles@{step.id}"
+    if step.plan == "sideband_thermometry":
+        g = step.params.get("feedback_gain")
+        return f"sideband_thermometry@{g:g}" if isinstance(g, float) else \
+            f"sideband_thermometry@{step.id}"
+    return step.plan
 
 
 def _truth_row(t) -> dict:
@@ -240,17 +208,7 @@ def _first(col):
     return v.item() if isinstance(v, np.generic) else v
 
 
-def _move(app, pressure_pa: float, gain: float):
-    """Plan stub: cold damping at ``gain`` (1/s), then the pressure to ``pressure_pa``."""
-    import bluesky.plan_stubs as bps
-
-    from .plans import set_feedback
-
-    yield from set_feedback(app, gain)
-    yield from bps.mv(app.pressure, pressure_pa)
-
-
-def _heating_vs_pressure(heat_runs: dict[float, dict]) -> dict:
+def _heating_vs_pressure(heat_runs: dict[str, dict]) -> dict:
     """Per axis ``Gamma(P) = a P + b``: gas slope ``a`` (quanta/(s Pa)) and the recoil
     intercept ``b`` (quanta/s)."""
     out = {}

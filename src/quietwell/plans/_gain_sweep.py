@@ -121,7 +121,7 @@ def validate_gain_sweep(setup: Setup, params: Mapping[str, Any]) -> Checked:
     rec = a["records_per_step"] * record_seconds(setup, a["sample_rate"], a["record_length"])
     t = sum(a["settle_periods"] / x + rec for x in gs)
     needs = LabState(pressure=a["pressure"], feedback=ON, gain=gs[0], needs_charge=True)
-    leaves = LabState(pressure=a["pressure"], feedback=ON, gain=None)
+    leaves = LabState(pressure=a["pressure"], feedback=ON, gain=gs[0])
     return Checked("gain_sweep", a, t, needs=needs, leaves=leaves)
 
 
@@ -200,6 +200,7 @@ def gain_sweep(
             totals.append(float(total))
             if rises >= stop_after_rises:
                 break
+        yield from set_feedback(app, gs[0])  # leaves a known state: the first gain
         pressure = float(np.nanmean([r["pressure"] for r in rec.primaries]))
         values.update(_summarize_gain(app, steps, pressure))
         values.put("calibration_source", "setup" if calibration is None else "measured", "")

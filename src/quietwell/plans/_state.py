@@ -28,7 +28,7 @@ from .._errors import InputError, LimitError
 from ..physics import Estimate
 from ..setup import Setup
 
-__all__ = ["LabState", "Checked", "reach_state", "state_after", "unsafe_reason",
+__all__ = ["LabState", "Checked", "reach_state", "safe_state", "HOLDING_GAIN", "state_after", "unsafe_reason",
            "clean_pressure", "clean_pressures", "clean_gain", "clean_int", "clean_positive",
            "clean_estimate", "clean_estimates", "record_seconds", "pressure_move_seconds"]
 
@@ -147,6 +147,26 @@ def reach_state(app: Any, needs: LabState):
         yield from bps.mv(app.pressure, float(needs.pressure))
     if needs.feedback == OFF:
         yield from set_feedback(app, None)
+
+
+#: Cold-damping gain (1/s) that holds the particle when no step says which: the
+#: pressure sweep's default, known to keep the shipped setups' particles trapped.
+HOLDING_GAIN = 2000.0
+
+
+def safe_state(app: Any, gain: float | None = None):
+    """Plan stub: the state to leave the apparatus in when a campaign stops.
+
+    The Coulomb drive off; below the loss pressure cold damping on (at ``gain`` 1/s, or
+    :data:`HOLDING_GAIN`), so the particle is kept; the laser and the pressure unchanged.
+    """
+    from ._common import set_feedback
+
+    yield from bps.mv(app.electrodes.drive_enabled, False)
+    reading = yield from bps.rd(app.pressure)
+    p = float(reading) if reading is not None else math.nan
+    if not p >= app.setup.trap.loss_pressure:  # below, or unknown: keep the particle
+        yield from set_feedback(app, min(gain or HOLDING_GAIN, app.setup.limits.feedback_gain_max))
 
 
 # --- cleaning of parameters (pure; used by every validate function) ----------------

@@ -1,0 +1,558 @@
+"""Run a campaign step by step into the store, with a ledger; resume after a crash.
+
+The step, not the bluesky message, is the unit of redo. The plans keep no bluesky
+checkpoint inside their runs, so a pause, a suspender or a signal ends the step's run
+(``exit_status`` ``abort`` with a stated reason) instead of rewinding it: a rewind would
+re-emit events while the recorder's records, the pending fits and the pressure pick
+stay where they were. The step is then run again from its preconditions, as a new run;
+the interrupted run stays in the catalog, marked ``superseded_by`` the new one.
+
+Before each step the runner brings the apparatus into the state the step needs
+(pressure and cold damping, in the safe order of :func:`~quietwell.plans.reach_state`),
+which after a crash is also how the step's preconditions are restored.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+import signal
+import threading
+import time
+import uuid
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .. import __version__
+from .._errors import InputError, QuietwellError
+from ..physics import Estimate
+from ..plans import STEPS, Checked, LabState, reach_state
+from ..plans._state import ANY, ON, safe_state
+from ..setup import Setup, load_setup
+from ._file import Campaign, CheckedCampaign, check_campaign, load_campaign, parse_campaign, resolve_params
+from ._ledger import Ledger, campaign_dirs, read_ledger
+from ._progress import Progress
+
+__all__ = ["run_campaign", "resume_campaign", "CampaignInterrupted", "CampaignOutcome",
+           "find_resumable", "CAUTIONS"]
+
+CAUTIONS = (
+    "Caution: this runs a levitation setup unattended. Laser radiation (trap lasers are "
+    "typically class 4), high voltage on the feedback electrodes and vacuum hardware can "
+    "hurt: follow your local codes and your laser-safety officer; the setup's limits are a "
+    "software guard, not an interlock.")
+
+_log = logging.getLogger("quietwell.campaign")
+
+
+class CampaignInterrupted(QuietwellError):
+    """A signal ended the campaign; ``exit_code`` is 130 (SIGINT) or 143 (SIGTERM)."""
+
+    def __init__(self, message: str, exit_code: int) -> None:
+        super().__init__(message)
+        self.exit_code = exit_code
+
+
+@dataclass
+class CampaignOutcome:
+    """What a campaign did: its id, folder, and per step id the uid and summary."""
+
+    campaign_id: str
+    folder: Path
+    uids: dict[str, str] = field(default_factory=dict)
+    summaries: dict[str, dict] = field(default_factory=dict)
+    adopted: list[str] = field(default_factory=list)
+    superseded: dict[str, str] = field(default_factory=dict)
+
+
+def _new_id(name: str) -> str:
+    return f"{time.strftime('%Y%m%d-%H%M%S')}-{name}-{uuid.uuid4().hex[:6]}"
+
+
+def run_campaign(campaign: str | Path | Campaign, profile: str | Path | Setup,
+                 data_dir: str | Path, *, progress: Progress | None = None,
+                 on_step: Callable | None = None, session: Any = None) -> CampaignOutcome:
+    """Check ``campaign`` on ``profile`` and run it into ``data_dir``.
+
+    ``on_step(step, uid, summary, session)`` (a CampaignStep) is called after each completed step.
+    ``session``: an open :class:`~quietwell.session.Session` to use (else one is
+    opened and closed here). Raises :class:`CampaignInterrupted` on SIGINT/SIGTERM and
+    :class:`~quietwell.QuietwellError` when a step fails (the ledger says which).
+    """
+    from .._profile import find_profile
+
+    camp = campaign if isinstance(campaign, Campaign) else load_campaign(campaign)
+    if isinstance(profile, Setup):
+        setup, profile_path = profile, Path(profile.source)
+    else:
+        profile_path = find_profile(profile)
+        setup = load_setup(profile_path)
+    checked = check_campaign(camp, setup)
+    cid = _new_id(camp.name)
+    folder = Path(data_dir).expanduser().resolve() / "campaigns" / cid
+    ledger = Ledger(folder / "ledger.jsonl")
+    ledger.append("campaign", campaign_id=cid, campaign_file=str(Path(camp.source).resolve())
+                  if Path(camp.source).exists() else camp.source,
+                  campaign_name=camp.name, campaign_text=camp.text, campaign_sha256=camp.sha256,
+                  setup=setup.name, setup_profile=str(Path(profile_path).resolve()),
+                  setup_sha256=setup.sha256, quietwell_version=__version__,
+                  steps=[{"index": s.step.index, "id": s.step.id, "plan": s.step.plan,
+                          "duration_s": s.checked.duration_s} for s in checked.steps],
+                  duration_s=checked.duration_s)
+    return _Runner(checked, cid, folder, ledger, data_dir, progress, on_step).run(session)
+
+
+def find_resumable(data_dir: str | Path) -> Path:
+    """The folder of the latest campaign in ``data_dir`` that did not complete."""
+    dirs = campaign_dirs(data_dir)
+    if not dirs:
+        raise InputError(f"--data-dir {data_dir}: no campaign was run here (no campaigns/*/"
+                         "ledger.jsonl); give the data directory of an interrupted campaign")
+    latest = dirs[-1]
+    entries = read_ledger(latest / "ledger.jsonl")
+    if any(e["event"] == "end" and e.get("status") == "completed" for e in entries):
+        raise InputError(f"--data-dir {data_dir}: the latest campaign {latest.name} completed; "
+                         "there is nothing to resume (start a new one with quietwell run)")
+    return latest
+
+
+def resume_campaign(data_dir: str | Path, *, progress: Progress | None = None,
+                    on_step: Callable | None = None) -> CampaignOutcome:
+    """Continue the interrupted campaign in ``data_dir`` (see the module docstring)."""
+    folder = find_resumable(data_dir)
+    ledger = Ledger(folder / "ledger.jsonl")
+    head = ledger.entries()[0]
+    camp = parse_campaign(head["campaign_text"], head.get("campaign_file", "<ledger>"))
+    try:
+        setup = load_setup(head["setup_profile"])
+    except InputError as exc:
+        raise InputError(f"{folder / 'ledger.jsonl'}: the campaign's setup cannot be loaded "
+                         f"({exc}); restore {head['setup_profile']}") from None
+    if setup.sha256 != head["setup_sha256"]:
+        raise InputError(f"{head['setup_profile']}: the setup changed since campaign "
+                         f"{head['campaign_id']} started (sha256 {setup.sha256[:12]}, was "
+                         f"{head['setup_sha256'][:12]}); restore it, or start a new campaign")
+    checked = check_campaign(camp, setup)
+    runner = _Runner(checked, head["campaign_id"], folder, ledger, data_dir, progress, on_step)
+    return runner.run(None, resume=True)
+
+
+class _Signals:
+    """SIGINT and SIGTERM end the current run (abort, with a plain reason) and the
+    campaign; a second signal while ending is ignored (the store must be closed)."""
+
+    REASONS = {signal.SIGINT: ("interrupted by the user", 130),
+               signal.SIGTERM: ("terminated", 143)}
+
+    def __init__(self, session: Any) -> None:
+        self.session = session
+        self.reason: str | None = None
+        self.code = 0
+        self._old: dict = {}
+
+    def __enter__(self) -> _Signals:
+        if threading.current_thread() is threading.main_thread():
+            for sig in self.REASONS:
+                self._old[sig] = signal.signal(sig, self._handle)
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        for sig, old in self._old.items():
+            signal.signal(sig, old)
+
+    def _handle(self, signum: int, frame: object) -> None:
+        if self.reason is not None:
+            return
+        self.reason, self.code = self.REASONS[signal.Signals(signum)]
+        self.session.stop_reason = self.reason
+        threading.Thread(target=self._abort, name="quietwell-abort", daemon=True).start()
+
+    def _abort(self) -> None:
+        from bluesky.utils import TransitionError
+
+        try:
+            self.session.RE.abort(self.reason)
+        except (TransitionError, RuntimeError):
+            pass  # idle between steps: the runner sees the flag before the next step
+
+
+class _Runner:
+    def __init__(self, checked: CheckedCampaign, cid: str, folder: Path, ledger: Ledger,
+                 data_dir: str | Path, progress: Progress | None, on_step: Callable | None):
+        self.checked, self.cid, self.folder, self.ledger = checked, cid, folder, ledger
+        self.data_dir = data_dir
+        self.progress = progress or Progress(quiet=True)
+        self.on_step = on_step
+        self.outcome = CampaignOutcome(cid, folder)
+        self.faults = _Faults.from_env()
+
+    # --- the ledger's view -------------------------------------------------------
+    def _state_from_ledger(self) -> tuple[dict[str, dict], dict[int, int], dict[int, list[str]]]:
+        results: dict[str, dict] = {}
+        attempts: dict[int, int] = {}
+        failed_uids: dict[int, list[str]] = {}
+        superseded = set()
+        for e in self.ledger.entries():
+            ev = e["event"]
+            if ev == "attempt":
+                attempts[e["step"]] = max(attempts.get(e["step"], 0), e["attempt"])
+            elif ev == "done":
+                sid = self.checked.steps[e["step"]].step.id
+                results[sid] = e["results"]
+                self.outcome.uids[sid] = e["uid"]
+                self.outcome.summaries[sid] = e["summary"]
+            elif ev in ("failed", "run"):
+                failed_uids.setdefault(e["step"], [])
+                if e.get("uid") and e["uid"] not in failed_uids[e["step"]]:
+                    failed_uids[e["step"]].append(e["uid"])
+            elif ev == "superseded":
+                superseded.add(e["uid"])
+        for k, uids in failed_uids.items():
+            done_uid = self.outcome.uids.get(self.checked.steps[k].step.id)
+            failed_uids[k] = [u for u in uids if u != done_uid and u not in superseded]
+        return results, attempts, failed_uids
+
+    # --- running -------------------------------------------------------------------
+    def run(self, session: Any, *, resume: bool = False) -> CampaignOutcome:
+        from ..session import open_session
+
+        handler = _log_to(self.folder / "log.txt")
+        own = session is None
+        try:
+            if own:
+                session = open_session(self.checked.setup, self.data_dir)
+            self.session = session
+            self._docs = _DocWatch(self)
+            token = session.RE.subscribe(self._docs)
+            if self.faults.point == "trigger":
+                session.RE.msg_hook = self.faults.on_msg
+            try:
+                with _Signals(session) as sig:
+                    self.signals = sig
+                    try:
+                        if resume:
+                            self._recover()
+                        self._run_steps()
+                    except CampaignInterrupted:
+                        raise
+                    finally:
+                        if sig.reason is not None or sys_exc_pending():
+                            self._safe_state()
+                    if sig.reason is not None:
+                        raise self._interrupted()
+            finally:
+                session.RE.unsubscribe(token)
+                self.progress.close()
+        finally:
+            if own and session is not None:
+                session.close()
+            logging.getLogger("quietwell").removeHandler(handler)
+            handler.close()
+        return self.outcome
+
+    def _interrupted(self) -> CampaignInterrupted:
+        sig = self.signals
+        self.ledger.append("end", status="stopped", reason=sig.reason)
+        _log.warning("campaign %s stopped: %s", self.cid, sig.reason)
+        return CampaignInterrupted(
+            f"{sig.reason}; the run in progress was ended and kept; resume with: quietwell run "
+            f"--resume --data-dir {Path(self.data_dir)}", sig.code)
+
+    def _recover(self) -> None:
+        """Rebuild unfinished runs from their journals, adopt completed ones."""
+        store = self.session.store
+        recovered = store.recover()
+        if recovered:
+            _log.info("recovered %d run(s) from their journals: %s", len(recovered),
+                      ", ".join(recovered))
+        self.faults.hit("resume")
+        results, _, _ = self._state_from_ledger()
+        done = {self.checked.steps[i].step.id for i in range(len(self.checked.steps))
+                if self.checked.steps[i].step.id in results}
+        for run in _journal_runs(store.journal_dir, self.cid):
+            sid = self.checked.steps[run["step"]].step.id
+            if sid in done or run["exit_status"] != "success" or run["summary"] is None:
+                continue
+            spec = STEPS[self.checked.steps[run["step"]].step.plan]
+            self.ledger.append("done", step=run["step"], attempt=run["attempt"], uid=run["uid"],
+                               summary=run["summary"], results=_results(spec, run["summary"]),
+                               adopted=True)
+            done.add(sid)
+            self.outcome.adopted.append(run["uid"])
+            _log.info("step %d (%s): adopted run %s, complete in its journal", run["step"], sid,
+                      run["uid"])
+        # runs of this campaign the ledger never heard of (killed before it wrote them)
+        known = {e.get("uid") for e in self.ledger.entries()}
+        for run in _journal_runs(store.journal_dir, self.cid):
+            if run["uid"] not in known:
+                self.ledger.append("failed", step=run["step"], attempt=run["attempt"],
+                                   uid=run["uid"], exit_status=run["exit_status"] or "abort",
+                                   reason="the process ended during the run")
+
+    def _run_steps(self) -> None:
+        results, attempts, stale = self._state_from_ledger()
+        steps = self.checked.steps
+        todo = [s for s in steps if s.step.id not in results]
+        self.progress.start(self.cid, steps, done=len(steps) - len(todo))
+        for cs in todo:
+            if self.signals.reason is not None:
+                return
+            i = cs.step.index
+            attempt = attempts.get(i, 0) + 1
+            self._run_step(cs, attempt, results, stale.get(i, []))
+            results, _, _ = self._state_from_ledger()
+        self.ledger.append("end", status="completed", reason="")
+        _log.info("campaign %s completed", self.cid)
+
+    def _before(self, index: int) -> LabState | None:
+        return self.checked.steps[index - 1].after if index > 0 else None
+
+    def _run_step(self, cs, attempt: int, results: dict, stale: list[str]) -> None:
+        session, step = self.session, cs.step
+        spec = STEPS[step.plan]
+        params, _ = resolve_params(step, self.checked.setup, results,
+                                   source=self.checked.campaign.source)
+        try:
+            checked: Checked = spec.validate(self.checked.setup, params)
+        except (InputError, QuietwellError) as exc:
+            self._fail(cs, attempt, None, "refused", str(exc))
+            raise QuietwellError(f"{step.where(self.checked.campaign.source)}: {exc}") from None
+        self.ledger.append("attempt", step=step.index, attempt=attempt, plan=step.plan,
+                           params=_jsonable_params(checked.params))
+        _log.info("step %d (%s, %s) attempt %d: %s", step.index, step.id, step.plan, attempt,
+                  _jsonable_params(checked.params))
+        self.progress.step(step.index, step.id, step.plan, checked.duration_s)
+        target = _target(self._before(step.index), checked.needs)
+        session.RE(reach_state(session.apparatus, target))
+        md = {"campaign_id": self.cid, "campaign_step": step.index, "campaign_attempt": attempt,
+              "campaign_step_id": step.id}
+        self._docs.expect(step.index, attempt)
+        session.stop_reason = ""
+        from bluesky.utils import RunEngineInterrupted
+
+        uid = None
+        try:
+            res = session.RE(spec.plan(session.apparatus, checked, md))
+            uid = res.run_start_uids[0] if res.run_start_uids else None
+            status, reason = res.exit_status, res.reason
+            summary = dict(res.plan_result or {})
+        except RunEngineInterrupted:
+            uid = self._docs.uid
+            status, reason, summary = "abort", self.signals.reason or "interrupted", {}
+        except Exception as exc:  # noqa: BLE001 - recorded in the ledger, then re-raised
+            uid = self._docs.uid
+            if self.signals.reason is not None:
+                status, reason, summary = "abort", self.signals.reason, {}
+            else:
+                self._fail(cs, attempt, uid, "fail", f"{type(exc).__name__}: {exc}")
+                raise QuietwellError(f"step {step.index} ({step.id}, {step.plan}) failed: "
+                                     f"{' '.join(str(exc).split())}; the ledger "
+                                     f"{self.ledger.path} has it; fix the cause and resume "
+                                     f"with quietwell run --resume --data-dir "
+                                     f"{Path(self.data_dir)}") from None
+        if status != "success" or self.signals.reason is not None:
+            self._fail(cs, attempt, uid, status if status != "success" else "abort",
+                       self.signals.reason or reason or "the run did not succeed")
+            if self.signals.reason is None:
+                raise QuietwellError(f"step {step.index} ({step.id}) ended with {status}: "
+                                     f"{reason}; resume with quietwell run --resume --data-dir "
+                                     f"{Path(self.data_dir)}")
+            return
+        summary = {k: _first(v) for k, v in summary.items()}
+        self.ledger.append("done", step=step.index, attempt=attempt, uid=uid, summary=summary,
+                           results=_results(spec, summary))
+        self.faults.hit("done", step.index)
+        self.outcome.uids[step.id] = uid
+        self.outcome.summaries[step.id] = summary
+        _log.info("step %d (%s) done: run %s", step.index, step.id, uid)
+        self.progress.step_done(step.index, step.id, uid, summary)
+        for old in stale:
+            self._supersede(old, uid)
+        if self.on_step is not None:
+            self.on_step(step, uid, summary, session)
+
+    def _fail(self, cs, attempt: int, uid: str | None, status: str, reason: str) -> None:
+        self.ledger.append("failed", step=cs.step.index, attempt=attempt, uid=uid,
+                           exit_status=status, reason=reason)
+        _log.error("step %d (%s) attempt %d: %s (%s)", cs.step.index, cs.step.id, attempt,
+                   status, reason)
+
+    def _supersede(self, old: str, new: str) -> None:
+        try:
+            node = self.session.store.client[old]
+            node.update_metadata(metadata={**dict(node.metadata), "superseded_by": new})
+        except Exception as exc:  # noqa: BLE001 - the ledger keeps it; retried next resume
+            _log.error("run %s: could not mark it superseded by %s: %s", old, new, exc)
+            return
+        self.ledger.append("superseded", uid=old, by=new)
+        self.outcome.superseded[old] = new
+        _log.info("run %s superseded by %s", old, new)
+
+    def _safe_state(self) -> None:
+        """Drive off; cold damping on below the loss pressure (the particle is kept)."""
+        try:
+            gain = next((cs.after.gain for cs in reversed(self.checked.steps)
+                         if cs.after is not None and cs.after.gain), None)
+            self.session.RE(safe_state(self.session.apparatus, gain))
+        except Exception as exc:  # noqa: BLE001 - logged; the store must still close
+            _log.error("could not put the apparatus into its safe state: %s", exc)
+
+
+def sys_exc_pending() -> bool:
+    import sys
+
+    return sys.exc_info()[0] is not None
+
+
+def _target(before: LabState | None, needs: LabState) -> LabState:
+    b = before or LabState()
+    fb = needs.feedback if needs.feedback != ANY else b.feedback
+    gain = needs.gain if needs.feedback != ANY else b.gain
+    return LabState(pressure=needs.pressure if needs.pressure is not None else b.pressure,
+                    feedback=fb, gain=gain if fb == ON else None)
+
+
+def _first(v: Any) -> Any:
+    if isinstance(v, list) and len(v) == 1:
+        return v[0]
+    return v
+
+
+def _results(spec, summary: dict) -> dict:
+    out: dict = {}
+    for name, res in spec.results.items():
+        vals = []
+        for k in res.keys:
+            v = summary.get(k)
+            if v is None:
+                vals.append(None)
+            elif res.estimate:
+                vals.append({"value": v, "stderr": summary.get(f"{k}_stderr", math.nan)})
+            else:
+                vals.append(v)
+        out[name] = vals[0] if len(vals) == 1 else vals
+    return out
+
+
+def _jsonable_params(params: dict) -> dict:
+    def conv(v):
+        if isinstance(v, Estimate):
+            return {"value": v.value, "stderr": v.stderr}
+        if isinstance(v, list | tuple):
+            return [conv(x) for x in v]
+        return v
+
+    return {k: conv(v) for k, v in params.items()}
+
+
+def _journal_runs(journal_dir: Path, cid: str) -> list[dict]:
+    """Runs of campaign ``cid`` in the journal: step, attempt, uid, exit status, summary."""
+    import json
+
+    out = []
+    for path in sorted(Path(journal_dir).glob("*.jsonl")):
+        try:
+            with open(path, encoding="utf-8") as f:
+                first = f.readline()
+                name, start = json.loads(first)
+                if name != "start" or start.get("campaign_id") != cid:
+                    continue
+                summary_desc, summary, status = None, None, None
+                for line in f:
+                    try:
+                        n, doc = json.loads(line)
+                    except json.JSONDecodeError:
+                        break  # cut short by the crash
+                    if n == "descriptor" and doc.get("name") == "summary":
+                        summary_desc = doc["uid"]
+                    elif n == "event" and doc.get("descriptor") == summary_desc:
+                        summary = {k: _first(v) for k, v in doc["data"].items()}
+                    elif n == "stop":
+                        status = doc.get("exit_status")
+        except (OSError, ValueError):
+            continue
+        out.append({"uid": start["uid"], "step": start["campaign_step"],
+                    "attempt": start["campaign_attempt"], "exit_status": status,
+                    "summary": summary, "time": start["time"]})
+    return sorted(out, key=lambda r: r["time"])
+
+
+class _DocWatch:
+    """Document callback: the ledger learns each run's uid at its start; the progress
+    display counts records and shows the latest fits; test faults hook in here."""
+
+    def __init__(self, runner: _Runner) -> None:
+        self.runner = runner
+        self.uid: str | None = None
+        self._streams: dict[str, str] = {}
+        self._step = self._attempt = 0
+        self.records = 0
+
+    def expect(self, step: int, attempt: int) -> None:
+        self._step, self._attempt, self.uid, self.records = step, attempt, None, 0
+
+    def __call__(self, name: str, doc: dict) -> None:
+        r = self.runner
+        if name == "start" and doc.get("campaign_id") == r.cid:
+            self.uid = doc["uid"]
+            r.ledger.append("run", step=self._step, attempt=self._attempt, uid=doc["uid"])
+        elif name == "descriptor":
+            self._streams[doc["uid"]] = doc.get("name", "")
+        elif name == "event":
+            stream = self._streams.get(doc["descriptor"])
+            if stream == "primary":
+                self.records += 1
+                r.progress.record(self.records)
+                r.faults.hit("event")
+            elif stream == "fits":
+                r.progress.fit(doc["data"])
+        elif name == "stop":
+            r.faults.hit("stop")
+
+
+class _Faults:
+    """Fault injection for the crash tests (``QUIETWELL_FAULT=POINT:N``): the process
+    kills itself with SIGKILL at the N-th time it passes POINT (``event``: a primary
+    event, ``trigger``: 30 ms after a record began, ``stop``: a run's stop document,
+    ``done``: step N written to the ledger, ``resume``: after recovery). Unset in use."""
+
+    def __init__(self, point: str | None, n: int) -> None:
+        self.point, self.n, self.seen = point, n, 0
+
+    @classmethod
+    def from_env(cls) -> _Faults:
+        spec = os.environ.get("QUIETWELL_FAULT", "")
+        point, _, n = spec.partition(":")
+        return cls(point or None, int(n or 1))
+
+    def on_msg(self, msg: Any) -> None:
+        if msg.command == "trigger" and getattr(msg.obj, "name", "") != "fitter":
+            self.seen += 1
+            if self.seen == self.n:
+                threading.Timer(0.03, os.kill, (os.getpid(), signal.SIGKILL)).start()
+
+    def hit(self, point: str, index: int | None = None) -> None:
+        if point != self.point:
+            return
+        if index is not None:
+            if index == self.n:
+                os.kill(os.getpid(), signal.SIGKILL)
+            return
+        self.seen += 1
+        if self.seen == self.n:
+            os.kill(os.getpid(), signal.SIGKILL)
+
+
+def _log_to(path: Path) -> logging.Handler:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    handler = logging.FileHandler(path, encoding="utf-8")
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    handler.setLevel(logging.INFO)
+    root = logging.getLogger("quietwell")
+    root.addHandler(handler)
+    if root.level == logging.NOTSET or root.level > logging.INFO:
+        root.setLevel(logging.INFO)
+    return handler
