@@ -12,6 +12,7 @@ streams ``primary`` (raw traces as external HDF5 and the gauge ``pressure``),
 from ._calibrations import charge_calibration
 from ._calibrations import thermal_calibration_plan as thermal_calibration
 from ._common import Apparatus, Recorder, run_metadata, set_feedback, wait_lab
+from ._connect import connect_apparatus
 from ._derived_device import DerivedValues
 from ._gain_sweep import gain_sweep, predicted_cold_damping
 from ._pressure_sweep import pressure_sweep
@@ -19,7 +20,7 @@ from ._reheating import reheating_cycles
 from ._sideband import sideband_thermometry
 
 __all__ = [
-    "Apparatus", "DerivedValues", "Recorder", "charge_calibration", "gain_sweep",
+    "Apparatus", "DerivedValues", "Recorder", "charge_calibration", "connect_apparatus", "gain_sweep",
     "predicted_cold_damping", "pressure_sweep", "reheating_cycles", "run_metadata",
     "set_feedback", "sideband_thermometry", "thermal_calibration", "wait_lab",
 ]
