@@ -8,7 +8,9 @@ sleeps on the wall clock. :func:`lab_params_from_setup` maps a setup profile ont
 The device layer wraps :class:`SimLab` through the backends of ``_backends``
 (``SimMotion``, ``SimHeterodyne``, ``SimElectrodes``, ``SimCharge``, ``SimLaser``,
 ``SimGauge``, ``SimPressure``, ``SimClockBackend``) and :func:`build_sim_apparatus`
-/ :func:`connect_apparatus`; these load bluesky and ophyd-async on first use only.
+(registered as the builder of setup kind ``sim``) with :func:`connect_apparatus`
+(re-exported from :mod:`quietwell.plans`); these load bluesky and ophyd-async on
+first use only.
 """
 
 from typing import Any
@@ -47,7 +49,7 @@ from ._particle import (
 
 _LAZY = {
     "build_sim_apparatus": "._from_setup",
-    "connect_apparatus": "._from_setup",
+    "connect_apparatus": "quietwell.plans",  # re-exported: one implementation
     "SimMotion": "._backends",
     "SimHeterodyne": "._backends",
     "SimElectrodes": "._backends",

@@ -2,11 +2,13 @@
 
 :func:`lab_params_from_setup` maps every field of a :class:`quietwell.setup.Setup`
 onto :class:`LabParams`; :func:`build_sim_apparatus` builds the :class:`SimLab` and
-the ophyd-async devices on it with the setup's limits; :func:`connect_apparatus`
-connects them in the RunEngine's event loop.
+the ophyd-async devices on it with the setup's limits. quietwell finds it through the
+entry point ``sim`` of the group ``quietwell.apparatus``;
+:func:`quietwell.plans.connect_apparatus` connects the devices in the RunEngine's
+event loop.
 
-A RunEngine must exist before :func:`connect_apparatus` (ophyd-async devices live
-in the loop that bluesky's RunEngine runs in a background thread)::
+A RunEngine must exist before ``connect_apparatus`` (ophyd-async devices live in the
+loop that bluesky's RunEngine runs in a background thread)::
 
     RE = RunEngine()
     app = build_sim_apparatus(load_setup("profiles/amber"), raw_dir)
@@ -21,7 +23,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from quietwell import InputError
-from quietwell._profile import connect_apparatus  # re-exported: one implementation
 from quietwell.physics import GASES
 from quietwell.setup import Setup
 
@@ -36,7 +37,6 @@ if TYPE_CHECKING:  # the device layer (bluesky, ophyd-async) loads only when bui
 __all__ = [
     "lab_params_from_setup",
     "build_sim_apparatus",
-    "connect_apparatus",
     "GAUGE_KIND_OF_SETUP",
     "PRESSURE_TIMEOUT_S",
     "PRESSURE_POLL_S",
@@ -176,7 +176,7 @@ def build_sim_apparatus(
         Devices ``motion`` (detector), ``het`` (heterodyne, keys ``het_...``, only
         with a heterodyne carrier), ``electrodes``, ``charge``, ``laser``, the gauges
         by their setup names, ``pressure_control`` and ``clock``; not yet connected
-        (see :func:`connect_apparatus`). ``sim_truth()`` gives the plain-JSON truth
+        (see :func:`quietwell.plans.connect_apparatus`). ``sim_truth()`` gives the plain-JSON truth
         (radius_m, mass_kg, density_kg_m3, charge_e, frequencies_hz,
         calibration_v_per_m, gas, temperature_k, laser_power_w, wavelength_m,
         waist_m) and ``sim_pressure()`` the true pressure in Pa;

@@ -87,7 +87,8 @@ def open_session(profile: str | Path | Setup, data_dir: str | Path, *,
     """
     from bluesky import RunEngine
 
-    from ._profile import build_apparatus, connect_apparatus, find_profile
+    from ._profile import build_apparatus, find_profile
+    from .plans import connect_apparatus
     from .store import EmbeddedStore
 
     if isinstance(profile, Setup):

@@ -12,6 +12,7 @@ streams ``primary`` (raw traces as external HDF5 and the gauge ``pressure``),
 from ._calibrations import charge_calibration
 from ._calibrations import thermal_calibration_plan as thermal_calibration
 from ._common import Apparatus, Recorder, run_metadata, set_feedback, wait_lab
+from ._connect import connect_apparatus
 from ._derived_device import DerivedValues
 from ._gain_sweep import gain_sweep, predicted_cold_damping
 from ._pressure_sweep import pressure_sweep
@@ -22,7 +23,8 @@ from ._state import Checked, LabState, reach_state, state_after, unsafe_reason
 
 __all__ = [
     "Apparatus", "Checked", "DerivedValues", "LabState", "Param", "Recorder", "Result",
-    "STEPS", "Step", "charge_calibration", "gain_sweep", "predicted_cold_damping",
-    "pressure_sweep", "reach_state", "reheating_cycles", "run_metadata", "set_feedback",
-    "sideband_thermometry", "state_after", "thermal_calibration", "unsafe_reason", "wait_lab",
+    "STEPS", "Step", "charge_calibration", "connect_apparatus", "gain_sweep",
+    "predicted_cold_damping", "pressure_sweep", "reach_state", "reheating_cycles",
+    "run_metadata", "set_feedback", "sideband_thermometry", "state_after",
+    "thermal_calibration", "unsafe_reason", "wait_lab",
 ]
