@@ -309,14 +309,29 @@ def test_discharge_steps_change_the_sim_charge(RE, app):
     assert app.sim_truth()["charge_e"] == 7 - 3
 
 
+def _count_advances(lab) -> list[int]:
+    """Count the calls of ``lab.advance`` from now on (element 0 of the returned list)."""
+    count = [0]
+    advance = lab.advance
+
+    def counted(*a, **k):
+        count[0] += 1
+        return advance(*a, **k)
+
+    lab.advance = counted
+    return count
+
+
 def test_pressure_settles_in_sim_time_with_tiny_wall_time(RE, app):
     lab = app.extras["lab"]
-    t_sim, t_wall = lab.now, time.perf_counter()
+    t_sim = lab.now
+    polls = _count_advances(lab)
     RE(bps.mv(app.pressure, 10.0))
-    wall = time.perf_counter() - t_wall
     assert lab.pressure_settled and abs(lab.pressure / 10.0 - 1) <= 0.03
     assert lab.now - t_sim >= lab.params.chamber.settle_hold
-    assert wall < 0.5
+    # no wall clock: the sim clock advances in a bounded number of polls, whatever
+    # the machine's load (speed is measured in bench/, never asserted in a test)
+    assert 0 < polls[0] < 200
     assert app.sim_pressure() == lab.pressure
 
 
@@ -336,12 +351,13 @@ def test_pump_down_to_1e_8_mbar_takes_hours_of_sim_time_and_little_wall_time(RE,
             ]
         )
     )
-    t_wall = time.perf_counter()
+    polls = _count_advances(lab)
     RE(bps.mv(app.pressure, 1e-6))
-    wall = time.perf_counter() - t_wall
     assert lab.pressure_settled and abs(lab.pressure / 1e-6 - 1) <= 0.03
     assert lab.now > 3600.0  # hours of outgassing-limited pumping
-    assert wall < 2.0  # ~0.3 s here; a 1 s poll would cost ~10 s
+    # the poll interval grows with the time waited: a fixed 1 s poll would need more
+    # than 3600 polls for these hours
+    assert 0 < polls[0] < 0.1 * lab.now
     assert not lab.truth().lost  # feedback kept it
 
 
@@ -351,7 +367,7 @@ def test_clock_move_advances_sim_time_by_an_hour(RE, app):
     t_wall = time.perf_counter()
     RE(bps.mv(app.clock, 3600))
     assert lab.now - t0 == pytest.approx(3600.0, abs=1e-9)
-    assert time.perf_counter() - t_wall < 1.0
+    assert time.perf_counter() - t_wall < 60.0  # it never sleeps an hour of wall clock
 
 
 def test_sim_truth_is_plain_json_with_the_agreed_keys(app):

@@ -48,7 +48,7 @@ class Progress:
         from rich.console import Console
         from rich.live import Live
 
-        self._console = self._console or Console()
+        self._console = self._console or Console(file=sys.__stdout__)
         self._live = Live(self._render(), console=self._console, refresh_per_second=4,
                           transient=False)
         self._live.start()

@@ -140,6 +140,28 @@ def resume_campaign(data_dir: str | Path, *, progress: Progress | None = None,
     return runner.run(None, resume=True)
 
 
+class _PrintsToLog:
+    """bluesky prints its state changes ("Aborting: ...") to standard output; during a
+    campaign they go to the log instead, so the terminal shows the live view and one
+    closing line."""
+
+    def write(self, text: str) -> int:
+        for line in text.splitlines():
+            if line.strip():
+                _log.info("bluesky: %s", line.strip())
+        return len(text)
+
+    def flush(self) -> None:
+        pass
+
+
+def _quiet_re(RE: Any, plan: Any) -> Any:
+    import contextlib
+
+    with contextlib.redirect_stdout(_PrintsToLog()):
+        return RE(plan)
+
+
 class _Signals:
     """SIGINT and SIGTERM end the current run (abort, with a plain reason) and the
     campaign; a second signal while ending is ignored (the store must be closed)."""
@@ -220,6 +242,7 @@ class _Runner:
         from ..session import open_session
 
         handler = _log_to(self.folder / "log.txt")
+        logging.captureWarnings(True)  # the fits' warnings into the log, not the terminal
         own = session is None
         try:
             if own:
@@ -249,7 +272,8 @@ class _Runner:
         finally:
             if own and session is not None:
                 session.close()
-            logging.getLogger("quietwell").removeHandler(handler)
+            logging.getLogger().removeHandler(handler)
+            logging.captureWarnings(False)
             handler.close()
         return self.outcome
 
@@ -326,7 +350,7 @@ class _Runner:
                   _jsonable_params(checked.params))
         self.progress.step(step.index, step.id, step.plan, checked.duration_s)
         target = _target(self._before(step.index), checked.needs)
-        session.RE(reach_state(session.apparatus, target))
+        _quiet_re(session.RE, reach_state(session.apparatus, target))
         md = {"campaign_id": self.cid, "campaign_step": step.index, "campaign_attempt": attempt,
               "campaign_step_id": step.id}
         self._docs.expect(step.index, attempt)
@@ -335,7 +359,7 @@ class _Runner:
 
         uid = None
         try:
-            res = session.RE(spec.plan(session.apparatus, checked, md))
+            res = _quiet_re(session.RE, spec.plan(session.apparatus, checked, md))
             uid = res.run_start_uids[0] if res.run_start_uids else None
             status, reason = res.exit_status, res.reason
             summary = dict(res.plan_result or {})
@@ -396,7 +420,7 @@ class _Runner:
         try:
             gain = next((cs.after.gain for cs in reversed(self.checked.steps)
                          if cs.after is not None and cs.after.gain), None)
-            self.session.RE(safe_state(self.session.apparatus, gain))
+            _quiet_re(self.session.RE, safe_state(self.session.apparatus, gain))
         except Exception as exc:  # noqa: BLE001 - logged; the store must still close
             _log.error("could not put the apparatus into its safe state: %s", exc)
 
@@ -551,8 +575,10 @@ def _log_to(path: Path) -> logging.Handler:
     handler = logging.FileHandler(path, encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
     handler.setLevel(logging.INFO)
-    root = logging.getLogger("quietwell")
-    root.addHandler(handler)
-    if root.level == logging.NOTSET or root.level > logging.INFO:
-        root.setLevel(logging.INFO)
+    # on the root logger: the libraries' warnings and errors (bluesky's "Run aborted"
+    # with its traceback) go to the log file, not to the terminal
+    logging.getLogger().addHandler(handler)
+    ours = logging.getLogger("quietwell")
+    if ours.level == logging.NOTSET or ours.level > logging.INFO:
+        ours.setLevel(logging.INFO)
     return handler

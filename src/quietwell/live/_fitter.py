@@ -43,9 +43,19 @@ def _process_pool() -> ProcessPoolExecutor:
     with _POOL_LOCK:
         if _POOL is None:
             _POOL = ProcessPoolExecutor(max_workers=1,
-                                        mp_context=multiprocessing.get_context("spawn"))
+                                        mp_context=multiprocessing.get_context("spawn"),
+                                        initializer=_ignore_group_signals)
             atexit.register(_POOL.shutdown, wait=False, cancel_futures=True)
         return _POOL
+
+
+def _ignore_group_signals() -> None:
+    # Ctrl-C and a service manager's stop signal the whole process group; the parent
+    # ends the run and shuts this worker down, so the worker must not die first.
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
 
 
 def _run_analysis(analyzer, traces: dict, data: dict) -> tuple[dict | None, str, float]:

@@ -31,6 +31,7 @@ from __future__ import annotations
 import json
 import os
 import queue
+import signal
 import sys
 import threading
 
@@ -41,6 +42,11 @@ def main(argv: list[str]) -> int:
               file=sys.stderr)
         return 2
     catalog_dir, raw_dir, backup_dir, batch = argv
+    # Ctrl-C in a terminal, a service manager's stop and `timeout` signal the whole
+    # process group: the parent decides how a run ends and closes the pipe, after which
+    # this process finishes what it was given. A signal here would lose that.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
     # Replies go to the original stdout; the server's own output to stderr.
     replies = os.fdopen(os.dup(1), "w")
     os.dup2(2, 1)
