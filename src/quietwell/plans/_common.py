@@ -16,13 +16,14 @@ import numpy as np
 from bluesky.utils import short_uid
 
 from .. import __version__
+from .._errors import QuietwellError
 from .._plain import plain
 from ..live import LiveFitter
 from ..physics import AXES
 from ..setup import Setup
 from ._derived_device import DerivedValues
 
-__all__ = ["Apparatus", "Recorder", "run_metadata", "set_feedback", "wait_lab",
+__all__ = ["Apparatus", "Recorder", "RecordMismatchError", "run_metadata", "set_feedback", "wait_lab",
            "emit_summary"]
 
 
@@ -122,6 +123,10 @@ class _PressurePick(DerivedValues):
             self.put("sim_pressure", true_p, "Pa")
 
 
+class RecordMismatchError(QuietwellError, RuntimeError):
+    """Records and their fits are out of step (a record rewound, duplicated or lost)."""
+
+
 class Recorder:
     """Acquire records into ``primary`` and their fits into ``fits``, one behind.
 
@@ -153,7 +158,10 @@ class Recorder:
         return best[0], best[1]
 
     def record(self):
-        yield from bps.checkpoint()
+        # No checkpoint: a rewind would replay the messages since it (a second primary
+        # event, a second fit submitted) while this object's records and pending fits
+        # stay where they are. Without one, a pause, a suspender or a signal ends the
+        # run (exit_status "abort"), and the step is redone as a whole.
         group = short_uid("record")
         for det in self.detectors:
             if hasattr(det, "trigger"):
@@ -182,7 +190,16 @@ class Recorder:
     def _read_fit(self):
         r = yield from bps.trigger_and_read([self.fitter], name="fits")
         self._outstanding -= 1
-        self.fits.append({k: plain(v["value"]) for k, v in r.items()})
+        fit = {k: plain(v["value"]) for k, v in r.items()}
+        expected = len(self.fits) + 1  # the primary event's seq_num of the next fit
+        if fit.get("record_seq_num") != expected:
+            # a rewound, duplicated or lost record: no summary may pair records with the
+            # wrong fits, so the run ends here and the step is redone as a whole
+            raise RecordMismatchError(
+                f"fit of record {fit.get('record_seq_num')} read where the fit of record "
+                f"{expected} belongs (records and fits out of step); the run is ended "
+                "without a summary, redo the step")
+        self.fits.append(fit)
 
     def flush(self):
         while self._outstanding > 0:
