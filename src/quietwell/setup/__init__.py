@@ -12,9 +12,9 @@ from ._schema import (
     load_setup,
     setup_from_dict,
 )
-from ._units import UNITS, parse_quantity
+from ._units import KINDS, display, parse_quantity
 
 __all__ = [
-    "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "LimitSpec", "ParticleSpec", "Setup",
-    "TrapSpec", "UNITS", "VacuumSpec", "load_setup", "parse_quantity", "setup_from_dict",
+    "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec", "ParticleSpec", "Setup",
+    "TrapSpec", "VacuumSpec", "display", "load_setup", "parse_quantity", "setup_from_dict",
 ]
