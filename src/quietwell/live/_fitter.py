@@ -88,6 +88,9 @@ class LiveFitter:
                       if in_process else None)
         self._lock = threading.Lock()
         self._queue: deque[tuple[int, Future]] = deque()
+        #: The record whose fit the next ``trigger()`` reads (None: the oldest one). The
+        #: recorder sets it, so a trigger cut short by an interruption is read again.
+        self.want: int | None = None
         self._reading: dict = self._empty("no record yet")
 
     # --- fed by the documents ---
@@ -126,7 +129,14 @@ class LiveFitter:
     def trigger(self) -> Status:
         status = Status(obj=self, timeout=None)
         with self._lock:
-            oldest = self._queue.popleft() if self._queue else None
+            if self.want is None:
+                oldest = self._queue.popleft() if self._queue else None
+            else:
+                # keep the wanted record's fit queued until read, drop older ones
+                while self._queue and self._queue[0][0] < self.want:
+                    self._queue.popleft()
+                oldest = (self._queue[0] if self._queue and self._queue[0][0] == self.want
+                          else None)
         if oldest is None:
             self._reading = self._empty("no new record since the last fit")
             status.set_finished()
@@ -140,6 +150,12 @@ class LiveFitter:
 
         fut.add_done_callback(done)
         return status
+
+    def forget(self, seq_num: int) -> None:
+        """Drop the queued fit of record ``seq_num`` once it has been read (see ``want``)."""
+        with self._lock:
+            if self._queue and self._queue[0][0] == seq_num:
+                self._queue.popleft()
 
     @property
     def pending(self) -> int:

@@ -188,18 +188,24 @@ class Recorder:
             yield from self._read_fit()
 
     def _read_fit(self):
-        r = yield from bps.trigger_and_read([self.fitter], name="fits")
-        self._outstanding -= 1
-        fit = {k: plain(v["value"]) for k, v in r.items()}
         expected = len(self.fits) + 1  # the primary event's seq_num of the next fit
-        if fit.get("record_seq_num") != expected:
+        self.fitter.want = expected
+        yield from bps.trigger(self.fitter, wait=True)
+        got = self.fitter.latest.get("record_seq_num")
+        if got != expected:
             # a rewound, duplicated or lost record: no summary may pair records with the
-            # wrong fits, so the run ends here and the step is redone as a whole
+            # wrong fits, so the run ends here (before the fit is stored) and the step is
+            # redone as a whole
             raise RecordMismatchError(
-                f"fit of record {fit.get('record_seq_num')} read where the fit of record "
-                f"{expected} belongs (records and fits out of step); the run is ended "
-                "without a summary, redo the step")
-        self.fits.append(fit)
+                f"fit of record {got} read where the fit of record {expected} belongs "
+                "(records and fits out of step); the run is ended without a summary, redo "
+                "the step")
+        yield from bps.create("fits")
+        r = yield from bps.read(self.fitter)
+        yield from bps.save()
+        self.fitter.forget(expected)
+        self._outstanding -= 1
+        self.fits.append({k: plain(v["value"]) for k, v in r.items()})
 
     def flush(self):
         while self._outstanding > 0:
