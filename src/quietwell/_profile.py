@@ -29,6 +29,7 @@ if TYPE_CHECKING:  # re-exported lazily through __getattr__ below
 
 __all__ = [
     "APPARATUS_ENTRY_POINTS",
+    "apparatus_builder",
     "apparatus_builders",
     "build_apparatus",
     "connect_apparatus",
@@ -116,6 +117,15 @@ def build_apparatus(setup: Setup | str | Path, raw_dir: str | Path) -> Any:
     """
     if not isinstance(setup, Setup):
         setup = load_setup(find_profile(setup))
+    return apparatus_builder(setup)(setup, Path(raw_dir))
+
+
+def apparatus_builder(setup: Setup) -> Any:
+    """The loaded builder registered for ``setup.kind`` (see :func:`build_apparatus`).
+
+    Raises :class:`~quietwell.InputError` (one line) when there is none or it cannot be
+    loaded: callers resolve it before they open a store or any device.
+    """
     builders = apparatus_builders()
     ep = builders.get(setup.kind)
     if ep is None:
@@ -135,7 +145,7 @@ def build_apparatus(setup: Setup | str | Path, raw_dir: str | Path) -> Any:
             f"cannot be loaded ({type(exc).__name__}: {exc}); fix or reinstall that "
             f"package, or remove its entry point from the group {APPARATUS_ENTRY_POINTS!r}"
         ) from None
-    return builder(setup, Path(raw_dir))
+    return builder
 
 
 def __getattr__(name: str) -> Any:

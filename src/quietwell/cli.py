@@ -399,25 +399,24 @@ def _checked_json(checked) -> dict:
             "duration_s": checked.duration_s}
 
 
-_SHOW_KIND = {"pressure": "pressure", "pressures": "pressure", "gains": "rate",
-              "feedback_gain": "rate", "engage_damping": "rate", "drive_frequency": "frequency",
-              "sample_rate": "frequency", "drive_amplitude": "voltage", "input_range": "voltage",
-              "off_time": "time", "on_time": "time", "settle_time": "time"}
-
-
-def _show(key: str, value) -> str:
+def _show(key: str, value, kind: str | None) -> str:
     from quietwell.physics import Estimate
-    from quietwell.setup._units import display
+    from quietwell.setup._units import KINDS, display
 
-    kind = _SHOW_KIND.get(key)
+    unit_kind = kind if kind in KINDS else None
     if isinstance(value, Estimate):
+        if value.stderr == 0:
+            return _show(key, value.value, kind)
+        if unit_kind:
+            return f"{display(value.value, unit_kind)} ± {display(value.stderr, unit_kind)}"
         return f"{value.value:.4g} ± {value.stderr:.2g}"
     if isinstance(value, list):
         if len(value) > 6:
-            return f"[{_show(key, value[0])} ... {_show(key, value[-1])}] ({len(value)})"
-        return "[" + ", ".join(_show(key, v) for v in value) + "]"
-    if kind and isinstance(value, float):
-        return display(value, kind)
+            return (f"[{_show(key, value[0], kind)} ... {_show(key, value[-1], kind)}] "
+                    f"({len(value)} values)")
+        return "[" + ", ".join(_show(key, v, kind) for v in value) + "]"
+    if unit_kind and isinstance(value, float):
+        return display(value, unit_kind)
     return str(value)
 
 
@@ -431,12 +430,23 @@ def _checked_table(checked) -> str:
                      f"{_hms(s.start_s)}")
         from quietwell.plans import STEPS
 
-        for k in STEPS[s.step.plan].params:
+        for k, param in STEPS[s.step.plan].params.items():
             v = s.checked.params.get(k)
             if v is None:
                 continue
-            tag = "  (from an earlier step; checked with a stand-in)" if k in s.deferred else ""
-            lines.append(f"       {k} = {_show(k, v)}{tag}")
+            if k in s.deferred:
+                ref = s.step.params[k]
+                text = f"result {ref.result!r} of step {ref.step!r}"
+                if ref.clip:
+                    text += (f", clipped to [{_show(k, ref.clip[0], param.kind)}, "
+                             f"{_show(k, ref.clip[1], param.kind)}]")
+                if ref.otherwise is not None:
+                    text += f", otherwise {_show(k, ref.otherwise, param.kind)}"
+                how = ("checked at both ends" if ref.clip
+                       else f"checked with the nominal {_show(k, v, param.kind)}")
+                lines.append(f"       {k} = {text} ({how})")
+            else:
+                lines.append(f"       {k} = {_show(k, v, param.kind)}")
     lines.append("nothing was moved and no device was opened")
     return "\n".join(lines)
 

@@ -87,7 +87,7 @@ def open_session(profile: str | Path | Setup, data_dir: str | Path, *,
     """
     from bluesky import RunEngine
 
-    from ._profile import build_apparatus, find_profile
+    from ._profile import apparatus_builder, find_profile
     from .plans import connect_apparatus
     from .store import EmbeddedStore
 
@@ -96,10 +96,11 @@ def open_session(profile: str | Path | Setup, data_dir: str | Path, *,
     else:
         where = find_profile(profile)
         setup = load_setup(where)
+    build = apparatus_builder(setup)  # refused before the store starts
     store = EmbeddedStore(data_dir, batch_size=batch_size).open()
     try:
         RE = RunEngine({}, context_managers=[], call_returns_result=True)
-        app = build_apparatus(setup, store.raw_dir)
+        app = build(setup, store.raw_dir)
         connect_apparatus(app)
     except BaseException:
         store.close()
