@@ -28,6 +28,7 @@ from numpy.typing import ArrayLike
 
 from quietwell._errors import FitError, InputError, QuietwellError, UnresolvedPeakError
 from quietwell.analysis import _fit_kernels
+from quietwell.analysis._compile_once import compile_once
 from quietwell.analysis._welch import PSDResult, _dot
 
 __all__ = [
@@ -632,6 +633,39 @@ def _find_peaks(
     return [int(i) for i in idx]
 
 
+def _kernels_first_call() -> None:
+    """Call every compiled kernel once, through the code that calls it in a fit.
+
+    A tiny plain and window-exact problem (16-sample window, bins 1..5 of its 9,
+    one peak) and the prominence of one maximum pass the same argument types as a
+    real fit; see :mod:`quietwell.analysis._compile_once`.
+    """
+    window = np.ones(16)
+    n_bins = 5
+    prob = _Problem(
+        om=_TWO_PI * np.arange(1.0, n_bins + 1.0),
+        p=np.ones(n_bins),
+        k=1.0,
+        df=1.0,
+        f_ref=np.array([2.0]),
+        scale_a=1.0,
+        lag_window=_lag_window(window),
+        sample_rate=float(window.size),
+        bins=_as_slice(np.arange(1, n_bins + 1)),
+        lag_times=np.arange(window.size) / float(window.size),
+    )
+    theta = np.zeros(4)
+    prob.deviance_stats(theta)
+    dataclasses.replace(prob, lag_window=None).deviance_stats(theta)
+    _fit_kernels.prominences_into(np.array([0.0, 1.0, 0.0]), np.array([1], dtype=np.int64), np.empty(1))
+
+
+def _compile_kernels() -> None:
+    """Compile (or load) the kernels in this thread before any fit runs in a thread."""
+    if _fit_kernels.AVAILABLE:
+        compile_once("fit_kernels", _kernels_first_call)
+
+
 @dataclass(frozen=True)
 class _Spectrum:
     f: np.ndarray
@@ -781,6 +815,7 @@ def fit_psd(
     if not np.all(p > 0):
         raise InputError("the PSD has bins <= 0 in the band; a fit needs a positive floor (noise)")
 
+    _compile_kernels()
     floor = _floor_estimate(p, k)
     width = _smooth_width(k)
     smooth = scipy.ndimage.uniform_filter1d(p, width, mode="nearest")
@@ -1015,5 +1050,6 @@ def fit_channels(
 
     if workers <= 1:
         return tuple(one(i) for i in range(n))
+    _compile_kernels()  # in this thread, before the channels go to threads
     with ThreadPoolExecutor(max_workers=workers) as pool:
         return tuple(pool.map(one, range(n)))

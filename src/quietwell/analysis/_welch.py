@@ -30,6 +30,7 @@ from numpy.lib.stride_tricks import as_strided
 from numpy.typing import ArrayLike
 
 from quietwell._errors import InputError
+from quietwell.analysis._compile_once import compile_once
 
 __all__ = ["PSDResult", "welch_psd", "welch_effective_averages", "bin_correlation_factor"]
 
@@ -332,6 +333,17 @@ else:  # pragma: no cover - numba missing
     _taps_power = _taps_power_numpy
 
 
+def _taps_power_first_call(dtype: np.dtype) -> None:
+    """Call :func:`_taps_power` once with the argument types of the ``dtype`` records.
+
+    ``spec`` is an rfft output (C-contiguous, writeable, complex of ``dtype``), the
+    taps and the accumulator float64, ``n`` a Python int, as in
+    :func:`_accumulate_range`; see :mod:`quietwell.analysis._compile_once`.
+    """
+    spec = scipy.fft.rfft(np.zeros((1, 4), dtype=dtype), axis=1, workers=1)
+    _taps_power(spec, np.zeros(2), 4, np.zeros(3))
+
+
 def _power_sum(b: np.ndarray) -> np.ndarray:
     """Per-bin sums over rows of |rfft(rows)|**2, in double precision.
 
@@ -431,6 +443,9 @@ def _accumulate(
     dtype = rows.dtype
     w = w64.astype(dtype)
     taps = _window_taps(w64) if detrend in ("constant", "none") else None
+    if taps is not None and _numba is not None:
+        # Compiled here, in the calling thread, before any range runs in a thread.
+        compile_once(("taps_power", dtype), lambda: _taps_power_first_call(dtype))
     block = max(1, min(n_segments, _BLOCK_BYTES // (nperseg * dtype.itemsize)))
     per_row = max(1, min(workers, n_segments // (2 * block)))
     edges = np.linspace(0, n_segments, per_row + 1).astype(int)
