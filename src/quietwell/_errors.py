@@ -17,7 +17,17 @@ __all__ = [
 
 
 class QuietwellError(Exception):
-    """Base class of every error quietwell raises on purpose."""
+    """Base class of every error quietwell raises on purpose.
+
+    ``key`` (optional, keyword only) names the parameter the error is about
+    (``"pressure"``, ``"gains[2]"``), so that a caller that knows where the value came
+    from (a step of a campaign file) can name the file, the step, the key and the value
+    as written there.
+    """
+
+    def __init__(self, *args: object, key: str | None = None):
+        super().__init__(*args)
+        self.key = key
 
 
 class QuietwellWarning(UserWarning):

@@ -486,14 +486,15 @@ def _run(args: argparse.Namespace) -> int:
     elif not args.campaign or not args.setup:
         raise InputError("quietwell run needs CAMPAIGN and --setup PROFILE (or --resume "
                          "--data-dir DIR); see 'quietwell run --help'")
+    if not args.resume:  # bad input is refused with one line, before anything is opened
+        path, setup = _setup_of(args)
+        camp = load_campaign(args.campaign)
+        check_campaign(camp, setup)
     print(CAUTIONS, file=sys.stderr)
     try:
         if args.resume:
             out = resume_campaign(args.data_dir, progress=Progress())
         else:
-            path, setup = _setup_of(args)
-            camp = load_campaign(args.campaign)
-            check_campaign(camp, setup)  # refused here, before anything is opened
             out = run_campaign(camp, setup, args.data_dir, progress=Progress())
     except CampaignInterrupted as exc:
         print(f"quietwell run: {exc}", file=sys.stderr)

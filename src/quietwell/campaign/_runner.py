@@ -32,7 +32,15 @@ from ..physics import Estimate
 from ..plans import STEPS, Checked, LabState, reach_state
 from ..plans._state import ANY, ON, safe_state
 from ..setup import Setup, load_setup
-from ._file import Campaign, CheckedCampaign, check_campaign, load_campaign, parse_campaign, resolve_params
+from ._file import (
+    Campaign,
+    CheckedCampaign,
+    check_campaign,
+    load_campaign,
+    parse_campaign,
+    resolve_params,
+    step_error,
+)
 from ._ledger import Ledger, campaign_dirs, read_ledger
 from ._progress import Progress
 
@@ -343,7 +351,7 @@ class _Runner:
             checked: Checked = spec.validate(self.checked.setup, params)
         except (InputError, QuietwellError) as exc:
             self._fail(cs, attempt, None, "refused", str(exc))
-            raise QuietwellError(f"{step.where(self.checked.campaign.source)}: {exc}") from None
+            raise QuietwellError(step_error(step, exc, self.checked.campaign.source)) from None
         self.ledger.append("attempt", step=step.index, attempt=attempt, plan=step.plan,
                            params=_jsonable_params(checked.params))
         _log.info("step %d (%s, %s) attempt %d: %s", step.index, step.id, step.plan, attempt,

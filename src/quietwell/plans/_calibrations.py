@@ -59,7 +59,7 @@ def _thermal_pressure(setup: Setup, pressure: Any, plan: str) -> float:
     if p < setup.trap.loss_pressure:
         raise LimitError(f"{plan} needs feedback off, so pressure={p:g} Pa must be at or "
                          f"above the setup's loss pressure {setup.trap.loss_pressure:g} Pa;"
-                         " choose a higher pressure")
+                         " choose a higher pressure", key="pressure")
     return p
 
 
@@ -90,18 +90,21 @@ def validate_charge_calibration(setup: Setup, params: Mapping[str, Any]) -> Chec
     if (isinstance(steps, str) or not isinstance(steps, Sequence) or len(steps) < 3
             or any(isinstance(s, bool) or not isinstance(s, int) for s in steps)):
         raise InputError(f"charge_steps={steps!r} must be at least 3 integers (elementary "
-                         "charges changed before each step, e.g. [0, -1, -1, -1])")
+                         "charges changed before each step, e.g. [0, -1, -1, -1])",
+                         key="charge_steps")
     a["charge_steps"] = [int(s) for s in steps]
     amp = clean_positive(a["drive_amplitude"], "drive_amplitude", "V")
     if amp > setup.limits.electrode_voltage_max:
         raise LimitError(f"drive_amplitude={amp:g} V is outside (0, "
-                         f"{setup.limits.electrode_voltage_max:g}] V (setup limit); lower it")
+                         f"{setup.limits.electrode_voltage_max:g}] V, the setup "
+                         f"{setup.name!r} limit; lower it", key="drive_amplitude")
     a["drive_amplitude"] = amp
     fd = clean_positive(a["drive_frequency"], "drive_frequency", "Hz")
     f_modes = setup.trap.frequencies
     if any(abs(fd - f) < 0.05 * f for f in f_modes):
         raise InputError(f"drive_frequency={fd:g} Hz is within 5 % of a mode "
-                         f"({', '.join(f'{f:g}' for f in f_modes)} Hz); drive off resonance")
+                         f"({', '.join(f'{f:g}' for f in f_modes)} Hz); drive off resonance,"
+                         " more than 5 % away from every mode", key="drive_frequency")
     a["drive_frequency"] = fd
     a["records_per_step"] = clean_int(a["records_per_step"], "records_per_step", 1)
     a["settle_time"] = clean_positive(a["settle_time"], "settle_time", "s", allow_zero=True)

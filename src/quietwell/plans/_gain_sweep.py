@@ -99,10 +99,11 @@ def validate_gain_sweep(setup: Setup, params: Mapping[str, Any]) -> Checked:
                        "stop_axes": AXES, **DETECTOR_DEFAULTS})
     g = a["gains"]
     if isinstance(g, str) or not isinstance(g, Sequence):
-        raise InputError(f"gains={g!r} is not a list of gains; give a list in 1/s")
+        raise InputError(f"gains={g!r} is not a list of gains; give a list in 1/s", key="gains")
     gs = a["gains"] = [clean_gain(setup, x, f"gains[{i}]") for i, x in enumerate(g)]
     if len(gs) < 3:
-        raise InputError(f"gains={list(g)!r}: the cold-damping model needs >= 3 gains")
+        raise InputError(f"gains={gs!r} 1/s: the cold-damping model needs >= 3 gains; give "
+                         "at least 3", key="gains")
     if a["pressure"] is not None:
         a["pressure"] = clean_pressure(setup, a["pressure"])
     if a["calibration"] is not None:
@@ -111,7 +112,8 @@ def validate_gain_sweep(setup: Setup, params: Mapping[str, Any]) -> Checked:
         a["mass"] = clean_estimate(a["mass"], "mass")
     axes = a["stop_axes"]
     if isinstance(axes, str) or not axes or any(x not in AXES for x in axes):
-        raise InputError(f"stop_axes={axes!r} must name axes among x, y, z")
+        raise InputError(f"stop_axes={axes!r} must name axes among x, y, z",
+                         key="stop_axes")
     a["stop_axes"] = list(axes)
     a["records_per_step"] = clean_int(a["records_per_step"], "records_per_step", 1)
     a["settle_periods"] = clean_positive(a["settle_periods"], "settle_periods", "damping times",

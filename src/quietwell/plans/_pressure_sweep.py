@@ -151,8 +151,8 @@ def validate_pressure_sweep(setup: Setup, params: Mapping[str, Any]) -> Checked:
     ps = clean_pressures(setup, a["pressures"])
     diffs = np.diff(ps)
     if not (np.all(diffs < 0) or np.all(diffs > 0)):
-        raise InputError(f"pressures={list(a['pressures'])!r} must be strictly monotonic (a "
-                         "pump-down or a bleed-up); sort them")
+        raise InputError(f"pressures={ps!r} Pa must be strictly monotonic (a pump-down or a "
+                         "bleed-up); sort them", key="pressures")
     a["pressures"] = ps
     a["records_per_step"] = clean_int(a["records_per_step"], "records_per_step", 1)
     a["settle_time"] = clean_positive(a["settle_time"], "settle_time", "s", allow_zero=True)

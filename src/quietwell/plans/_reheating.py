@@ -81,7 +81,8 @@ def validate_reheating_cycles(setup: Setup, params: Mapping[str, Any]) -> Checke
     if not 1024 <= n <= setup.limits.record_length_max:
         raise LimitError(f"off_time={a['off_time']:g} s at {fs:g} Hz is a record of {n} samples,"
                          f" outside [1024, {setup.limits.record_length_max}] (setup "
-                         f"{setup.name!r}); choose another off_time or sample_rate")
+                         f"{setup.name!r}); choose another off_time or sample_rate",
+                         key="off_time")
     t = a["cycles"] * (a["on_time"] + a["off_time"])
     state = LabState(pressure=a["pressure"], feedback=ON, gain=gain, needs_charge=True)
     return Checked("reheating_cycles", a, t, needs=state, leaves=state)

@@ -32,10 +32,10 @@ def take(params: Mapping[str, Any], plan: str, *, required: Sequence[str] = (),
     for key in params:
         if key not in allowed:
             raise InputError(f"{plan}: {key!r} is not a parameter of this step; allowed are "
-                             f"{', '.join(allowed)}; fix the spelling or remove it")
+                             f"{', '.join(allowed)}; fix the spelling or remove it", key=key)
     for key in required:
         if key not in params or params[key] is None:
-            raise InputError(f"{plan}: parameter {key!r} is missing; add it")
+            raise InputError(f"{plan}: parameter {key!r} is missing; add it", key=key)
     out = dict(optional)
     out.update({k: v for k, v in params.items()})
     return out
@@ -50,7 +50,8 @@ def clean_detector(setup: Any, a: dict[str, Any]) -> None:
         if isinstance(fs, bool) or not isinstance(fs, int | float) or not 0 < fs <= \
                 lim.sample_rate_max:
             raise LimitError(f"sample_rate={fs!r} Hz is outside (0, {lim.sample_rate_max:g}] Hz,"
-                             f" the setup {setup.name!r} limit; choose a rate inside it")
+                             f" the setup {setup.name!r} limit; choose a rate inside it",
+                             key="sample_rate")
         a["sample_rate"] = float(fs)
     if a.get("record_length") is not None:
         n = a["record_length"]
@@ -58,12 +59,13 @@ def clean_detector(setup: Any, a: dict[str, Any]) -> None:
                 lim.record_length_max:
             raise LimitError(f"record_length={n!r} samples is outside [1024, "
                              f"{lim.record_length_max}], the setup {setup.name!r} limit; "
-                             "choose an integer inside it")
+                             "choose an integer inside it", key="record_length")
     if a.get("input_range") is not None:
         r = a["input_range"]
         if isinstance(r, bool) or not isinstance(r, int | float) or not 0 < r <= 1e3:
             raise InputError(f"input_range={r!r} V must be a positive voltage (the "
-                             "digitiser's +- range); give one in V")
+                             "digitiser's +- range, at most 1000 V); give one in V",
+                             key="input_range")
         a["input_range"] = float(r)
 
 

@@ -50,7 +50,7 @@ def validate_sideband_thermometry(setup: Setup, params: Mapping[str, Any]) -> Ch
                          f"{setup.name!r} has none ([detector] heterodyne_carrier = 0); "
                          "remove the step or use a setup with heterodyne detection")
     if a["axis"] not in AXES:
-        raise InputError(f"axis={a['axis']!r} must be one of x, y, z")
+        raise InputError(f"axis={a['axis']!r} must be one of x, y, z", key="axis")
     a["records"] = clean_int(a["records"], "records", 1)
     if a["pressure"] is not None:
         a["pressure"] = clean_pressure(setup, a["pressure"])

@@ -29,6 +29,7 @@ from ..physics import Estimate
 from ..setup import Setup
 
 __all__ = ["LabState", "Checked", "reach_state", "safe_state", "HOLDING_GAIN", "state_after", "unsafe_reason",
+           "unsafe_problem",
            "clean_pressure", "clean_pressures", "clean_gain", "clean_int", "clean_positive",
            "clean_estimate", "clean_estimates", "record_seconds", "pressure_move_seconds"]
 
@@ -113,8 +114,17 @@ def unsafe_reason(setup: Setup, before: LabState | None, checked: Checked) -> st
     """Why the step would leave the particle undamped below the loss pressure, or None.
 
     Checks the state the step starts in (after :func:`reach_state`) and the state it
-    leaves; a particle whose charge is known to be zero cannot be cold-damped.
+    leaves; a particle whose charge is known to be zero cannot be cold-damped. The text
+    says what to change.
     """
+    found = unsafe_problem(setup, before, checked)
+    return None if found is None else found[1]
+
+
+def unsafe_problem(setup: Setup, before: LabState | None, checked: Checked
+                   ) -> tuple[str | None, str] | None:
+    """As :func:`unsafe_reason`, with the parameter of the step to change: ``(key, text)``
+    (``key`` is ``"pressure"``, or None when the cause is an earlier step), or None."""
     loss = setup.trap.loss_pressure
     prev = before or LabState()
     start = state_after(prev, replace(checked, leaves=LabState()))
@@ -122,13 +132,19 @@ def unsafe_reason(setup: Setup, before: LabState | None, checked: Checked) -> st
     for when, st in (("starts", start), ("ends", end)):
         if st.pressure is not None and st.pressure < loss and st.feedback != ON:
             fb = "off" if st.feedback == OFF else "not known to be on"
-            return (f"it {when} at {st.pressure:.3g} Pa, below the loss pressure {loss:.3g} Pa, "
-                    f"with cold damping {fb}")
+            return "pressure", (
+                f"it {when} at {st.pressure:.3g} Pa, below the loss pressure {loss:.3g} Pa, "
+                f"with cold damping {fb}, and the particle would be lost; give the step a "
+                "feedback_gain (cold damping on), put a step that engages cold damping "
+                f"before it, or keep its pressure at {loss:.3g} Pa or above")
     charge = setup.particle.charge_e + prev.charge_change
     if checked.needs.needs_charge and charge == 0:
-        return ("it needs a charged particle, and the charge calibration before it leaves "
-                f"{charge} e (the setup's {setup.particle.charge_e} e changed by "
-                f"{prev.charge_change})")
+        return None, (
+            "it needs a charged particle (cold damping and the Coulomb drive act on the "
+            f"charge), and the charge_steps of the charge calibration before it leave "
+            f"{charge} e (the setup's {setup.particle.charge_e} e changed by "
+            f"{prev.charge_change}); change those charge_steps so that their sum is not "
+            f"{-setup.particle.charge_e}, or remove this step")
     return None
 
 
@@ -174,7 +190,7 @@ def safe_state(app: Any, gain: float | None = None):
 
 def _number(value: Any, what: str, unit: str) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-        raise InputError(f"{what}={value!r} is not a number; give a value in {unit}")
+        raise InputError(f"{what}={value!r} is not a number; give a value in {unit}", key=what)
     return float(value)
 
 
@@ -185,17 +201,18 @@ def clean_pressure(setup: Setup, value: Any, what: str = "pressure") -> float:
     if not lim.pressure_min <= p <= lim.pressure_max:
         raise LimitError(f"{what}={p:g} Pa is outside the setup {setup.name!r} limits "
                          f"[{lim.pressure_min:g}, {lim.pressure_max:g}] Pa; choose a pressure "
-                         "inside them")
+                         "inside them", key=what)
     return p
 
 
 def clean_pressures(setup: Setup, values: Any, what: str = "pressures") -> list[float]:
     """A non-empty list of pressures (Pa) inside the setup's limits."""
     if isinstance(values, str) or not isinstance(values, Sequence):
-        raise InputError(f"{what}={values!r} is not a list of pressures; give a list in Pa")
+        raise InputError(f"{what}={values!r} is not a list of pressures; give a list in Pa",
+                         key=what)
     out = [clean_pressure(setup, p, f"{what}[{i}]") for i, p in enumerate(values)]
     if not out:
-        raise InputError(f"{what} is empty; give at least one pressure in Pa")
+        raise InputError(f"{what} is empty; give at least one pressure in Pa", key=what)
     return out
 
 
@@ -205,7 +222,7 @@ def clean_gain(setup: Setup, value: Any, what: str = "gain") -> float:
     hi = setup.limits.feedback_gain_max
     if not 0 < g <= hi:
         raise LimitError(f"{what}={g:g} 1/s is outside (0, {hi:g}] 1/s, the setup "
-                         f"{setup.name!r} limit; choose a gain inside it")
+                         f"{setup.name!r} limit; choose a gain inside it", key=what)
     return g
 
 
@@ -214,7 +231,7 @@ def clean_int(value: Any, what: str, lo: int, hi: int | None = None) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or value < lo or (
             hi is not None and value > hi):
         allowed = f">= {lo}" if hi is None else f"from {lo} to {hi}"
-        raise InputError(f"{what}={value!r} must be an integer {allowed}")
+        raise InputError(f"{what}={value!r} must be an integer {allowed}", key=what)
     return int(value)
 
 
@@ -222,7 +239,8 @@ def clean_positive(value: Any, what: str, unit: str, *, allow_zero: bool = False
     """A finite number > 0 (>= 0 with ``allow_zero``)."""
     x = _number(value, what, unit)
     if x < 0 or (x == 0 and not allow_zero):
-        raise InputError(f"{what}={x!r} must be {'>= 0' if allow_zero else '> 0'} {unit}")
+        raise InputError(f"{what}={x:g} must be {'>= 0' if allow_zero else '> 0'} {unit}",
+                         key=what)
     return x
 
 
@@ -231,7 +249,8 @@ def clean_estimate(value: Any, what: str) -> Estimate:
     if isinstance(value, Estimate):
         if not (math.isfinite(value.value) and value.value > 0):
             raise InputError(f"{what}={value.value!r} is not a positive measured value; the "
-                             "step it comes from did not give one: check that step's summary")
+                             "step it comes from did not give one: check that step's summary",
+                             key=what)
         return value
     return Estimate(clean_positive(value, what, "SI units"), 0.0)
 
@@ -239,7 +258,7 @@ def clean_estimate(value: Any, what: str) -> Estimate:
 def clean_estimates(values: Any, what: str, n: int = 3) -> list[Estimate]:
     """``n`` Estimates (x, y, z)."""
     if isinstance(values, str) or not isinstance(values, Sequence) or len(values) != n:
-        raise InputError(f"{what} must give {n} values (x, y, z), got {values!r}")
+        raise InputError(f"{what}={values!r} must give {n} values (x, y, z)", key=what)
     return [clean_estimate(v, f"{what}[{i}]") for i, v in enumerate(values)]
 
 
