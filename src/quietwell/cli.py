@@ -30,6 +30,7 @@ __all__ = ["main", "subcommand", "SUBCOMMANDS", "default_nperseg"]
 EXIT_OK = 0
 EXIT_INTERNAL = 1
 EXIT_BAD_INPUT = 2
+EXIT_MONITOR = 3  # a campaign stopped by a monitor (particle lost, pressure, saturation)
 
 
 class _UsageError(Exception):
@@ -464,6 +465,8 @@ def _run_arguments(parser: argparse.ArgumentParser) -> None:
                         help="data directory of the embedded store (created if missing)")
     parser.add_argument("--resume", action="store_true",
                         help="continue the interrupted campaign in DIR")
+    parser.add_argument("--particle-reloaded", action="store_true",
+                        help="with --resume: a particle is trapped again after a particle loss")
 
 
 @_run_arguments.runner
@@ -472,6 +475,7 @@ def _run(args: argparse.Namespace) -> int:
     from quietwell.campaign import (
         CAUTIONS,
         CampaignInterrupted,
+        MonitorStopped,
         Progress,
         check_campaign,
         load_campaign,
@@ -493,12 +497,16 @@ def _run(args: argparse.Namespace) -> int:
     print(CAUTIONS, file=sys.stderr)
     try:
         if args.resume:
-            out = resume_campaign(args.data_dir, progress=Progress())
+            out = resume_campaign(args.data_dir, progress=Progress(),
+                                  particle_reloaded=args.particle_reloaded)
         else:
             out = run_campaign(camp, setup, args.data_dir, progress=Progress())
     except CampaignInterrupted as exc:
         print(f"quietwell run: {exc}", file=sys.stderr)
         return exc.exit_code
+    except MonitorStopped as exc:
+        print(f"quietwell run: stopped by a monitor: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_MONITOR
     print(f"campaign {out.campaign_id} completed: {len(out.uids)} steps; ledger and log in "
           f"{out.folder}")
     return EXIT_OK

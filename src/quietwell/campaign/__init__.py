@@ -23,6 +23,8 @@ from ._runner import (
     CAUTIONS,
     CampaignInterrupted,
     CampaignOutcome,
+    MonitorStopped,
+    ParticleLost,
     find_resumable,
     resume_campaign,
     run_campaign,
@@ -30,7 +32,8 @@ from ._runner import (
 
 __all__ = [
     "CAUTIONS", "SETUP_VALUES", "Campaign", "CampaignInterrupted", "CampaignOutcome",
-    "CampaignStep", "CheckedCampaign", "Ledger", "Progress", "Ref", "campaign_dirs",
+    "CampaignStep", "CheckedCampaign", "Ledger", "MonitorStopped", "ParticleLost", "Progress",
+    "Ref", "campaign_dirs",
     "check_campaign", "find_resumable", "load_campaign", "parse_campaign", "read_ledger",
     "resolve_params", "resume_campaign", "run_campaign",
 ]

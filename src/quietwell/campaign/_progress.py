@@ -67,6 +67,10 @@ class Progress:
         self._fit = data
         self._refresh()
 
+    def monitor(self, data: dict) -> None:
+        self._done_lines.append(f"monitor: {data.get('condition')} -> {data.get('action')}")
+        self._refresh()
+
     def step_done(self, index: int, sid: str, uid: str, summary: dict) -> None:
         self._done_lines.append(f"step {index + 1}/{len(self._steps)} {sid}: done, run "
                                 f"{uid[:8]}")

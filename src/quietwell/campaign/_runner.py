@@ -30,6 +30,7 @@ from .. import __version__
 from .._errors import InputError, QuietwellError
 from ..physics import Estimate
 from ..plans import STEPS, Checked, LabState, reach_state
+from ..plans._monitors import MonitorStop, ParticleLostError
 from ..plans._state import ANY, ON, safe_state
 from ..setup import Setup, load_setup
 from ._file import (
@@ -45,6 +46,7 @@ from ._ledger import Ledger, campaign_dirs, read_ledger
 from ._progress import Progress
 
 __all__ = ["run_campaign", "resume_campaign", "CampaignInterrupted", "CampaignOutcome",
+           "ParticleLost", "MonitorStopped",
            "find_resumable", "CAUTIONS"]
 
 CAUTIONS = (
@@ -54,6 +56,15 @@ CAUTIONS = (
     "software guard, not an interlock.")
 
 _log = logging.getLogger("quietwell.campaign")
+
+
+class MonitorStopped(QuietwellError):
+    """A monitor stopped the campaign (exit status 3 of ``quietwell run``)."""
+
+
+class ParticleLost(MonitorStopped):
+    """The particle was lost: the campaign stopped, and resumes only when told that a
+    particle is loaded again (``--particle-reloaded``)."""
 
 
 class CampaignInterrupted(QuietwellError):
@@ -128,11 +139,24 @@ def find_resumable(data_dir: str | Path) -> Path:
 
 
 def resume_campaign(data_dir: str | Path, *, progress: Progress | None = None,
-                    on_step: Callable | None = None) -> CampaignOutcome:
-    """Continue the interrupted campaign in ``data_dir`` (see the module docstring)."""
+                    on_step: Callable | None = None,
+                    particle_reloaded: bool = False) -> CampaignOutcome:
+    """Continue the interrupted campaign in ``data_dir`` (see the module docstring).
+
+    A campaign that a particle loss stopped is resumed only with
+    ``particle_reloaded=True``: the user says a particle is trapped again.
+    """
     folder = find_resumable(data_dir)
     ledger = Ledger(folder / "ledger.jsonl")
-    head = ledger.entries()[0]
+    entries = ledger.entries()
+    head = entries[0]
+    ends = [e for e in entries if e["event"] == "end"]
+    if ends and ends[-1].get("particle_lost") and not particle_reloaded:
+        raise InputError(f"{folder / 'ledger.jsonl'}: campaign {head['campaign_id']} stopped "
+                         f"because the particle was lost ({ends[-1]['reason']}); load a "
+                         "particle, then resume with --particle-reloaded")
+    if ends and ends[-1].get("particle_lost"):
+        ledger.append("particle_reloaded", reason="the user said a particle is loaded")
     camp = parse_campaign(head["campaign_text"], head.get("campaign_file", "<ledger>"))
     try:
         setup = load_setup(head["setup_profile"])
@@ -218,6 +242,7 @@ class _Runner:
         self.on_step = on_step
         self.outcome = CampaignOutcome(cid, folder)
         self.faults = _Faults.from_env()
+        self._lost = False
 
     # --- the ledger's view -------------------------------------------------------
     def _state_from_ledger(self) -> tuple[dict[str, dict], dict[int, int], dict[int, list[str]]]:
@@ -269,8 +294,11 @@ class _Runner:
                         self._run_steps()
                     except CampaignInterrupted:
                         raise
+                    except ParticleLost:
+                        self._lost = True
+                        raise
                     finally:
-                        if sig.reason is not None or sys_exc_pending():
+                        if not self._lost and (sig.reason is not None or sys_exc_pending()):
                             self._safe_state()
                     if sig.reason is not None:
                         raise self._interrupted()
@@ -374,6 +402,28 @@ class _Runner:
         except RunEngineInterrupted:
             uid = self._docs.uid
             status, reason, summary = "abort", self.signals.reason or "interrupted", {}
+        except ParticleLostError as exc:
+            uid = self._docs.uid
+            self._fail(cs, attempt, uid, "fail", str(exc))
+            self._lost_state()
+            self.ledger.append("end", status="stopped", reason=str(exc), particle_lost=True)
+            _log.error("campaign %s stopped: %s", self.cid, exc)
+            raise ParticleLost(
+                f"step {step.index} ({step.id}): {exc}; the apparatus is in its safe state "
+                f"and the campaign stopped; load a particle, then resume with quietwell run "
+                f"--resume --particle-reloaded --data-dir {Path(self.data_dir)}") from None
+        except MonitorStop as exc:
+            uid = self._docs.uid
+            self._fail(cs, attempt, uid, "fail", str(exc))
+            if exc.policy == "skip":
+                self.ledger.append("skipped", step=step.index, attempt=attempt, uid=uid,
+                                   reason=str(exc))
+                _log.warning("step %d (%s) skipped: %s", step.index, step.id, exc)
+                return
+            self.ledger.append("end", status="stopped", reason=str(exc))
+            raise MonitorStopped(f"step {step.index} ({step.id}): {exc}; the campaign stopped; "
+                                 f"resume with quietwell run --resume --data-dir "
+                                 f"{Path(self.data_dir)}") from None
         except Exception as exc:  # noqa: BLE001 - recorded in the ledger, then re-raised
             uid = self._docs.uid
             if self.signals.reason is not None:
@@ -422,6 +472,27 @@ class _Runner:
         self.ledger.append("superseded", uid=old, by=new)
         self.outcome.superseded[old] = new
         _log.info("run %s superseded by %s", old, new)
+
+    def _lost_state(self) -> None:
+        """The profile's safe state after a particle loss ([monitors] safe_feedback,
+        safe_laser_power); the Coulomb drive off."""
+        import bluesky.plan_stubs as bps
+
+        from ..plans import set_feedback
+
+        spec, app = self.checked.setup.monitors, self.session.apparatus
+
+        def plan():
+            yield from bps.mv(app.electrodes.drive_enabled, False)
+            if spec.safe_feedback == "off":
+                yield from set_feedback(app, None)
+            if spec.safe_laser_power > 0:
+                yield from bps.mv(app.laser.power, spec.safe_laser_power)
+
+        try:
+            _quiet_re(self.session.RE, plan())
+        except Exception as exc:  # noqa: BLE001 - logged; the store must still close
+            _log.error("could not put the apparatus into its safe state: %s", exc)
 
     def _safe_state(self) -> None:
         """Drive off; cold damping on below the loss pressure (the particle is kept)."""
@@ -541,6 +612,15 @@ class _DocWatch:
                 r.faults.hit("event")
             elif stream == "fits":
                 r.progress.fit(doc["data"])
+            elif stream == "monitor":
+                d = doc["data"]
+                r.ledger.append("monitor", step=self._step, attempt=self._attempt,
+                                uid=self.uid, condition=d.get("condition"),
+                                action=d.get("action"), value=d.get("value"),
+                                message=d.get("message"))
+                _log.warning("monitor: %s -> %s (%s)", d.get("condition"), d.get("action"),
+                             d.get("message"))
+                r.progress.monitor(d)
         elif name == "stop":
             r.faults.hit("stop")
 

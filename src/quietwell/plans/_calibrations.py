@@ -275,10 +275,13 @@ def charge_calibration(
                     yield from bps.mv(app.charge.steps, s)
                 cumulative += s
                 yield from wait_lab(app, settle_time)
+                n0 = len(rec.pairs())
                 for _ in range(records_per_step):
                     yield from rec.record()
                 yield from rec.flush()
-                per_step.append((cumulative, rec.pairs()[-records_per_step:]))
+                pairs = rec.pairs()[n0:]  # the clean records of this charge
+                if pairs:
+                    per_step.append((cumulative, pairs))
         finally:
             yield from bps.mv(el.drive_enabled, False)
         values.update(_summarize_charge(per_step, thermal_fits, field, drive_frequency,

@@ -130,20 +130,33 @@ class RecordMismatchError(QuietwellError, RuntimeError):
 class Recorder:
     """Acquire records into ``primary`` and their fits into ``fits``, one behind.
 
-    ``record()`` triggers the detectors, reads them and the gauges into one
-    ``primary`` event (with the chosen ``pressure``), then reads the fit of the
-    previous record, so that each fit runs while the next record is acquired.
-    ``flush()`` reads every outstanding fit. ``fits`` collects plain dicts of every fit
-    read and ``primaries`` the plain primary readings, in order.
+    ``record()`` asks the run's :class:`~quietwell.plans._monitors.Monitors` whether to
+    go on (it may wait out a pressure excursion on the lab clock, or end the run),
+    triggers the detectors, reads them and the gauges into one ``primary`` event (with
+    the chosen ``pressure``), asks the monitors whether the record is clean, then reads
+    the fit of the previous record, so that each fit runs while the next record is
+    acquired. ``flush()`` reads every outstanding fit. ``fits`` and ``primaries`` hold
+    the plain fits and primary readings of the clean records, in order (what summaries
+    are computed from); ``left_out`` the ``seq_num`` of the records taken while a
+    condition held (kept in ``primary`` and ``fits``, never in a summary).
     """
 
     def __init__(self, app: Apparatus, detectors: Sequence[Any], fitter: LiveFitter) -> None:
+        from ._monitors import Monitors
+
         self.app, self.detectors, self.fitter = app, list(detectors), fitter
         self.pick = _PressurePick(sim=app.sim_pressure is not None)
+        self.monitors = Monitors(app)
         self.fits: list[dict] = []
         self.primaries: list[dict] = []
-        self._outstanding = 0
+        self.left_out: list[int] = []
+        self._saved = 0
+        self._unread: list[tuple[int, bool]] = []  # (seq_num, clean) whose fit is unread
         self._accuracy = {g.name: g.accuracy for g in app.setup.vacuum.gauges}
+
+    @property
+    def _outstanding(self) -> int:
+        return len(self._unread)
 
     def _choose(self, readings: dict) -> tuple[float, str]:
         best = (math.nan, "none", math.inf)
@@ -158,10 +171,12 @@ class Recorder:
         return best[0], best[1]
 
     def record(self):
+        """Plan stub: one record and its event; returns True if the record is clean."""
         # No checkpoint: a rewind would replay the messages since it (a second primary
         # event, a second fit submitted) while this object's records and pending fits
         # stay where they are. Without one, a pause, a suspender or a signal ends the
         # run (exit_status "abort"), and the step is redone as a whole.
+        yield from self.monitors.before_record()
         group = short_uid("record")
         for det in self.detectors:
             if hasattr(det, "trigger"):
@@ -182,13 +197,19 @@ class Recorder:
         yield from bps.read(self.pick)
         readings.update(self.pick.values)
         yield from bps.save()
-        self.primaries.append(readings)
-        self._outstanding += 1
+        self._saved += 1
+        clean = yield from self.monitors.after_record(readings)
+        if clean:
+            self.primaries.append(readings)
+        else:
+            self.left_out.append(self._saved)
+        self._unread.append((self._saved, clean))
         while self._outstanding > 1:
             yield from self._read_fit()
+        return clean
 
     def _read_fit(self):
-        expected = len(self.fits) + 1  # the primary event's seq_num of the next fit
+        expected, clean = self._unread[0]  # the primary event's seq_num of the next fit
         self.fitter.want = expected
         yield from bps.trigger(self.fitter, wait=True)
         got = self.fitter.latest.get("record_seq_num")
@@ -204,15 +225,18 @@ class Recorder:
         r = yield from bps.read(self.fitter)
         yield from bps.save()
         self.fitter.forget(expected)
-        self._outstanding -= 1
-        self.fits.append({k: plain(v["value"]) for k, v in r.items()})
+        self._unread.pop(0)
+        fit = {k: plain(v["value"]) for k, v in r.items()}
+        yield from self.monitors.after_fit(fit)
+        if clean:
+            self.fits.append(fit)
 
     def flush(self):
         while self._outstanding > 0:
             yield from self._read_fit()
 
     def pairs(self) -> list[tuple[dict, dict]]:
-        """(primary, fit) of every record whose fit has been read."""
+        """(primary, fit) of every clean record whose fit has been read."""
         return list(zip(self.primaries, self.fits, strict=False))
 
 

@@ -189,10 +189,13 @@ def gain_sweep(
         for g in gs:
             yield from set_feedback(app, g)
             yield from wait_lab(app, settle_periods / g)
+            n0 = len(rec.fits)
             for _ in range(records_per_step):
                 yield from rec.record()
             yield from rec.flush()
-            fits = rec.fits[-records_per_step:]
+            fits = rec.fits[n0:]  # the clean records of this gain
+            if not fits:
+                continue
             steps.append((g, fits))
             total = sum(np.nanmean([f[f"occupation_{a}"] for f in fits]) for a in stop_axes)
             if totals and total > totals[-1]:

@@ -132,8 +132,9 @@ def pressure_sweep(
             yield from set_setpoint(app, p)
             yield from wait_lab(app, settle_time)
             for _ in range(records_per_step):
-                yield from rec.record()
-                step_flags.append(feedback_on)
+                clean = yield from rec.record()
+                if clean:  # rec.primaries holds the clean records only
+                    step_flags.append(feedback_on)
             yield from rec.flush()
         values.update(summarize_pressure_sweep(rec.pairs(), step_flags, rho,
                                                setup.temperature, gas.name))

@@ -5,6 +5,7 @@ from ._schema import (
     ElectrodeSpec,
     GaugeSpec,
     LimitSpec,
+    MonitorSpec,
     ParticleSpec,
     Setup,
     TrapSpec,
@@ -15,6 +16,7 @@ from ._schema import (
 from ._units import KINDS, display, parse_quantity
 
 __all__ = [
-    "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec", "ParticleSpec", "Setup",
+    "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec", "MonitorSpec", "ParticleSpec",
+    "Setup",
     "TrapSpec", "VacuumSpec", "display", "load_setup", "parse_quantity", "setup_from_dict",
 ]

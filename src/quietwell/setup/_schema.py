@@ -28,6 +28,7 @@ __all__ = [
     "GaugeSpec",
     "VacuumSpec",
     "LimitSpec",
+    "MonitorSpec",
     "Setup",
     "load_setup",
     "setup_from_dict",
@@ -123,6 +124,32 @@ class LimitSpec:
 
 
 @dataclass(frozen=True)
+class MonitorSpec:
+    """What the unattended-safety monitors watch and do (SI units; ``[monitors]``).
+
+    ``intensity_min`` (V): below it on the detector's intensity channel the particle is
+    taken as lost (0: only the fits' motional peaks are watched). ``pressure_band``: the
+    gauge reading must stay within [P/band, P*band] of the step's pressure P.
+    ``pressure_timeout`` (s) of lab time, then ``pressure_policy`` (wait, skip, stop).
+    ``saturation_fraction``: the largest fraction of a record the electrode drive may
+    sit at its limit; ``saturation_action`` (suspend: the record is left out and the
+    step goes on; end: the step's run ends). ``safe_feedback`` (keep, off) and
+    ``safe_laser_power`` (W; 0: unchanged) define the safe state after a particle loss.
+    ``poll_interval`` (s) of lab time between reads while a condition is waited out.
+    """
+
+    intensity_min: float = 0.0
+    pressure_band: float = 3.0
+    pressure_timeout: float = 600.0
+    pressure_policy: str = "stop"
+    saturation_fraction: float = 0.05
+    saturation_action: str = "suspend"
+    safe_feedback: str = "off"
+    safe_laser_power: float = 0.0
+    poll_interval: float = 5.0
+
+
+@dataclass(frozen=True)
 class Setup:
     """A parsed setup description (SI units throughout)."""
 
@@ -138,6 +165,7 @@ class Setup:
     vacuum: VacuumSpec
     limits: LimitSpec
     seed: int | None = None
+    monitors: MonitorSpec = field(default_factory=MonitorSpec)
     source: str = field(default="<dict>", compare=False)
 
     def as_dict(self) -> dict[str, Any]:
@@ -164,6 +192,9 @@ _KNOWN_KEYS: dict[str, tuple[str, ...]] = {
     "electrodes": ("distance", "geometry_factor", "loop_delay"),
     "vacuum": ("gas", "base_pressure", "start_pressure", "gauges"),
     "vacuum.gauges": ("name", "kind", "range_min", "range_max", "accuracy"),
+    "monitors": ("intensity_min", "pressure_band", "pressure_timeout", "pressure_policy",
+                 "saturation_fraction", "saturation_action", "safe_feedback",
+                 "safe_laser_power", "poll_interval"),
     "limits": ("laser_power_max", "electrode_voltage_max", "feedback_gain_max",
                "modulation_depth_max", "pressure_min", "pressure_max", "sample_rate_max",
                "record_length_max"),
@@ -240,10 +271,13 @@ class _Section:
 def setup_from_dict(data: dict[str, Any], source: str = "<dict>") -> Setup:
     """Build a :class:`Setup` from the parsed TOML ``data``; ``source`` names it in errors."""
     known = ("setup", "particle", "trap", "detector", "electrodes", "vacuum", "limits")
+    optional = ("monitors",)
     for name in data:
+        if name in optional:
+            continue
         if name not in known:
             raise InputError(f"{source}: [{name}] is not a known section; allowed sections are "
-                             f"{', '.join(known)}; fix the spelling or remove it")
+                             f"{', '.join(known + optional)}; fix the spelling or remove it")
     sections = {}
     for name in known:
         if name not in data:
@@ -336,6 +370,30 @@ def setup_from_dict(data: dict[str, Any], source: str = "<dict>") -> Setup:
     if seed is not None and (isinstance(seed, bool) or not isinstance(seed, int) or seed < 0):
         raise InputError(f"{s.where('seed')} = {seed!r}: expected a non-negative integer; "
                          "fix the file")
+    mon_sec = _Section(data.get("monitors", {}), "monitors", source)
+    d0 = MonitorSpec()
+    monitors = MonitorSpec(
+        intensity_min=mon_sec.quantity("intensity_min", "voltage", lo=0.0, lo_open=False,
+                                       default=d0.intensity_min),
+        pressure_band=mon_sec.quantity("pressure_band", "dimensionless", lo=1.0, hi=1e3,
+                                       default=d0.pressure_band),
+        pressure_timeout=mon_sec.quantity("pressure_timeout", "time",
+                                          default=d0.pressure_timeout),
+        pressure_policy=mon_sec.text("pressure_policy", default=d0.pressure_policy,
+                                     choices=("wait", "skip", "stop")),
+        saturation_fraction=mon_sec.quantity("saturation_fraction", "dimensionless", hi=1.0,
+                                             default=d0.saturation_fraction),
+        saturation_action=mon_sec.text("saturation_action", default=d0.saturation_action,
+                                       choices=("suspend", "end")),
+        safe_feedback=mon_sec.text("safe_feedback", default=d0.safe_feedback,
+                                   choices=("keep", "off")),
+        safe_laser_power=mon_sec.quantity("safe_laser_power", "power", lo=0.0, lo_open=False,
+                                          hi=limits.laser_power_max,
+                                          default=d0.safe_laser_power),
+        poll_interval=mon_sec.quantity("poll_interval", "time", hi=3600.0,
+                                       default=d0.poll_interval),
+    )
+    mon_sec.finish()
     setup = Setup(
         name=s.text("name"),
         lab=s.text("lab", default=""),
@@ -349,6 +407,7 @@ def setup_from_dict(data: dict[str, Any], source: str = "<dict>") -> Setup:
         vacuum=vacuum,
         limits=limits,
         seed=seed,
+        monitors=monitors,
         source=source,
     )
     for sec in sections.values():
