@@ -22,6 +22,7 @@ from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 import numpy as np
 from ophyd.status import Status
 
+from .._lifeline import THIS_PROCESS, worker_init
 from .._plain import plain
 from ._feed import TraceFeed
 from ._record_fit import RecordAnalyzer
@@ -37,25 +38,20 @@ def _process_pool() -> ProcessPoolExecutor:
 
     Fits run in a separate process so that they use the second core instead of
     competing for the interpreter lock with the RunEngine and the catalog writer
-    ("spawn": the parent runs threads, which a fork must not copy).
+    ("spawn": the parent runs threads, which a fork must not copy). A clean exit shuts
+    the pool down (atexit); the initializer ends the fitting process at once if this
+    process dies otherwise (killed: no atexit), which also lets multiprocessing's
+    resource tracker, waiting for both, end.
     """
     global _POOL
     with _POOL_LOCK:
         if _POOL is None:
             _POOL = ProcessPoolExecutor(max_workers=1,
                                         mp_context=multiprocessing.get_context("spawn"),
-                                        initializer=_ignore_group_signals)
+                                        initializer=worker_init,
+                                        initargs=(THIS_PROCESS,))
             atexit.register(_POOL.shutdown, wait=False, cancel_futures=True)
         return _POOL
-
-
-def _ignore_group_signals() -> None:
-    # Ctrl-C and a service manager's stop signal the whole process group; the parent
-    # ends the run and shuts this worker down, so the worker must not die first.
-    import signal
-
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    signal.signal(signal.SIGTERM, signal.SIG_IGN)
 
 
 def _run_analysis(analyzer, traces: dict, data: dict) -> tuple[dict | None, str, float]:

@@ -202,7 +202,7 @@ class _CatalogProcess:
         with open(self.log_path, "ab") as log:
             self.proc = subprocess.Popen(
                 [sys.executable, "-m", "quietwell.store._serve", str(catalog_dir),
-                 str(raw_dir), str(backup_dir), str(batch_size)],
+                 str(raw_dir), str(backup_dir), str(batch_size), str(os.getpid())],
                 stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=log, text=True,
                 env={**os.environ, "PYTHONUNBUFFERED": "1"},
             )

@@ -1,7 +1,8 @@
 """The catalog process of the embedded store: ``python -m quietwell.store._serve``.
 
 Arguments: the catalog directory, the raw-trace directory (listed in the server's
-readable storage), the writer's backup directory and its batch size.
+readable storage), the writer's backup directory, its batch size and the pid of the
+process that starts this one (the parent).
 
 The process runs the tiled server and the ``TiledWriter`` that fills it. The parent
 sends the documents of its runs on standard input, one line ``<uid>\t[name, doc]``
@@ -15,8 +16,14 @@ emitted. On standard output the process writes, each on its own line,
 
 Everything the server itself prints goes to standard error (the parent sends it to
 ``DIR/catalog/server.log``). End of file on standard input ends the process, after the
-queued documents are written: the parent closes the pipe to stop it, and a parent that
-dies closes it too, so no server outlives its owner.
+queued documents are written: the parent closes the pipe to stop it.
+
+If the parent dies instead (killed, crashed), the process stops after the document in
+hand, closes the server and exits, within a second or so (:mod:`quietwell._lifeline`
+tells it; the pipe alone would not, if another process shares its write end, e.g. a
+fork of the parent). It does not write what is still queued: no one would mark those
+runs complete in the parent's journal, so ``quietwell recover`` rebuilds them from the
+journal anyway. If closing takes longer than :data:`_ORPHAN_GRACE_S`, it ends at once.
 
 Its own process gives the catalog its own interpreter lock and the second core: the
 writer's and the server's work no longer compete with the acquisition for the lock.
@@ -28,25 +35,44 @@ longer than that many records on the bench); the parent's journal is the durable
 
 from __future__ import annotations
 
+import gc
 import json
 import os
 import queue
 import signal
 import sys
 import threading
+import time
+
+from quietwell._lifeline import follow_parent
+
+#: Seconds the process may take to close once its parent has died, before it just ends.
+_ORPHAN_GRACE_S = 5.0
 
 
 def main(argv: list[str]) -> int:
-    if len(argv) != 4:
-        print("usage: python -m quietwell.store._serve CATALOG_DIR RAW_DIR BACKUP_DIR BATCH",
-              file=sys.stderr)
+    if len(argv) != 5 or not argv[4].isdigit():
+        print("usage: python -m quietwell.store._serve CATALOG_DIR RAW_DIR BACKUP_DIR BATCH "
+              "PARENT_PID", file=sys.stderr)
         return 2
-    catalog_dir, raw_dir, backup_dir, batch = argv
+    catalog_dir, raw_dir, backup_dir, batch, parent = argv
     # Ctrl-C in a terminal, a service manager's stop and `timeout` signal the whole
     # process group: the parent decides how a run ends and closes the pipe, after which
     # this process finishes what it was given. A signal here would lose that.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    lines: queue.SimpleQueue = queue.SimpleQueue()
+    orphaned = threading.Event()
+
+    def parent_died() -> None:
+        orphaned.set()
+        lines.put(None)  # wakes the loop below if it waits for input
+        time.sleep(_ORPHAN_GRACE_S)
+        print(f"quietwell catalog: the parent process {parent} died and closing took more "
+              f"than {_ORPHAN_GRACE_S:g} s; ending now", file=sys.stderr, flush=True)
+        os._exit(1)
+
+    follow_parent(int(parent), parent_died)  # before the imports: they take seconds
     # Replies go to the original stdout; the server's own output to stderr.
     replies = os.fdopen(os.dup(1), "w")
     os.dup2(2, 1)
@@ -57,16 +83,21 @@ def main(argv: list[str]) -> int:
     from tiled.client import from_uri
     from tiled.server import SimpleTiledServer
 
+    if orphaned.is_set():  # the parent died while this process started
+        return 1
+
     def reply(text: str) -> None:
-        replies.write(text + "\n")
-        replies.flush()
+        try:
+            replies.write(text + "\n")
+            replies.flush()
+        except OSError:  # the pipe is broken: the parent is gone
+            orphaned.set()
 
     with SimpleTiledServer(directory=catalog_dir, readable_storage=[raw_dir]) as server:
         writer = TiledWriter(from_uri(server.uri), batch_size=int(batch),
                              backup_directory=backup_dir)
         reply(f"uri {server.uri}")
         failed: dict[str, str] = {}
-        lines: queue.SimpleQueue = queue.SimpleQueue()
 
         def read_input() -> None:
             for text in sys.stdin:
@@ -74,7 +105,7 @@ def main(argv: list[str]) -> int:
             lines.put(None)  # end of input: the parent closed the pipe
 
         threading.Thread(target=read_input, name="quietwell-catalog-input", daemon=True).start()
-        while (line := lines.get()) is not None:
+        while (line := lines.get()) is not None and not orphaned.is_set():
             uid, _, payload = line.partition("\t")
             name, doc = json.loads(payload)
             if uid not in failed:
@@ -85,8 +116,27 @@ def main(argv: list[str]) -> int:
             if name == "stop":
                 reason = failed.pop(uid, None)
                 reply(f"done {uid}" if reason is None else f"failed {uid} {reason}")
+        if orphaned.is_set():
+            left = 0
+            while not lines.empty():
+                left += lines.get() is not None
+            print(f"quietwell catalog: the parent process {parent} died; stopping with "
+                  f"{left} document line(s) not written (the parent's journal holds them: "
+                  "`quietwell recover` rebuilds those runs)", file=sys.stderr, flush=True)
+    if orphaned.is_set():
+        try:
+            replies.close()
+        except OSError:
+            pass
+        return 1
     return 0
 
 
 if __name__ == "__main__":
-    sys.exit(main(sys.argv[1:]))
+    code = main(sys.argv[1:])
+    # The interpreter's last garbage collection walks the whole heap of tiled, pyarrow
+    # and duckdb (1-3 s measured) while the parent waits in EmbeddedStore.close(); the
+    # server has closed its storage and the replies are flushed, so nothing there needs
+    # a finalizer (atexit handlers, e.g. logging's, still run).
+    gc.freeze()
+    sys.exit(code)
