@@ -112,3 +112,15 @@ def test_a_catalog_process_that_dies_loses_nothing(tmp_path):
         assert np.asarray(run["primary"].read()["det"]).size == 3
         # the run itself completed: the journal holds its own stop document
         assert run.metadata["stop"]["exit_status"] == "success"
+
+
+def test_two_stores_on_one_data_directory_are_refused(tmp_path, monkeypatch):
+    # two catalog processes on one SQLite catalog would interleave their writes
+    monkeypatch.setenv("QUIETWELL_CATALOG_LOCK_WAIT", "1")
+    from quietwell import QuietwellError
+
+    with EmbeddedStore(tmp_path):
+        with pytest.raises(QuietwellError, match="in use by another quietwell process"):
+            EmbeddedStore(tmp_path).open()
+    with EmbeddedStore(tmp_path):  # free again once the first is closed
+        pass

@@ -50,6 +50,44 @@ from quietwell._lifeline import follow_parent
 _ORPHAN_GRACE_S = 5.0
 
 
+#: Seconds to wait for another catalog process of the same data directory to end (one
+#: whose parent was just killed finishes within a few seconds).
+_LOCK_WAIT_S = float(os.environ.get("QUIETWELL_CATALOG_LOCK_WAIT", "30"))
+
+
+def _lock_catalog(catalog_dir: str):
+    """An exclusive lock on ``catalog_dir`` for this process's life, or None.
+
+    Two catalog processes on one SQLite catalog would interleave their writes: a second
+    ``quietwell run`` on the same data directory, or a resume started while the killed
+    campaign's catalog process still finishes, waits here and then gives up with a line
+    in the log that names the process holding the directory.
+    """
+    import fcntl
+
+    path = os.path.join(catalog_dir, "catalog.lock")
+    f = open(path, "a+")  # noqa: SIM115 - held for the life of the process
+    t0 = time.monotonic()
+    while True:
+        try:
+            fcntl.flock(f.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+            break
+        except BlockingIOError:
+            if time.monotonic() - t0 > _LOCK_WAIT_S:
+                f.seek(0)
+                holder = f.read().strip() or "unknown"
+                print(f"the data directory is in use by another quietwell process (pid "
+                      f"{holder}); stop it, or use another --data-dir", file=sys.stderr,
+                      flush=True)
+                return None
+            time.sleep(0.2)
+    f.seek(0)
+    f.truncate()
+    f.write(str(os.getppid()))
+    f.flush()
+    return f
+
+
 def main(argv: list[str]) -> int:
     if len(argv) != 5 or not argv[4].isdigit():
         print("usage: python -m quietwell.store._serve CATALOG_DIR RAW_DIR BACKUP_DIR BATCH "
@@ -73,6 +111,9 @@ def main(argv: list[str]) -> int:
         os._exit(1)
 
     follow_parent(int(parent), parent_died)  # before the imports: they take seconds
+    lock = _lock_catalog(catalog_dir)
+    if lock is None:
+        return 3
     # Replies go to the original stdout; the server's own output to stderr.
     replies = os.fdopen(os.dup(1), "w")
     os.dup2(2, 1)
