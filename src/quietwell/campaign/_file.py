@@ -107,6 +107,28 @@ class CampaignStep:
 
 
 @dataclass(frozen=True)
+class SimFault:
+    """A fault the simulated laboratory injects: ``kind`` at ``after_s`` of lab time after
+    step ``step`` starts, with its parameters in SI (``[[sim.fault]]``)."""
+
+    kind: str
+    step: str
+    after_s: float
+    params: dict[str, Any]
+
+
+#: Faults of ``[[sim.fault]]``: their parameters as written -> (name in the simulated
+#: laboratory's ``schedule_fault``, kind of value).
+SIM_FAULTS: dict[str, dict[str, tuple[str, str]]] = {
+    "lose_particle": {},
+    "pressure_burst": {"factor": ("factor", "dimensionless"), "duration": ("duration_s", "time")},
+    "gauge_dropout": {"gauge": ("name", "text"), "duration": ("duration_s", "time")},
+    "change_charge": {"delta": ("delta_e", "integer")},
+    "saturate_drive": {"duration": ("duration_s", "time")},
+}
+
+
+@dataclass(frozen=True)
 class Campaign:
     """A parsed campaign file (setup-independent)."""
 
@@ -115,6 +137,7 @@ class Campaign:
     steps: tuple[CampaignStep, ...]
     source: str
     text: str
+    faults: tuple[SimFault, ...] = ()
 
     @property
     def sha256(self) -> str:
@@ -176,11 +199,11 @@ def parse_campaign(text: str, source: str = "<campaign>") -> Campaign:
         raise InputError(f"{source}: this is a setup file, not a campaign; give it with --setup "
                          "and a campaign file (see campaigns/) as the first argument")
     for key, value in data.items():
-        if key not in ("campaign", "step"):
+        if key not in ("campaign", "step", "sim"):
             what = f"[{key}]" if isinstance(value, dict) else f"{key} = {_toml(value)}"
             raise InputError(f"{source}: {what} is not part of a campaign; allowed at the top "
-                             "are the tables [campaign] and [[step]]; fix the spelling or "
-                             "remove it")
+                             "are the tables [campaign], [[step]] and [sim]; fix the spelling "
+                             "or remove it")
     head = data.get("campaign")
     if head is None:
         raise InputError(f"{source}: the [campaign] table is missing; add [campaign] with "
@@ -220,7 +243,50 @@ def parse_campaign(text: str, source: str = "<campaign>") -> Campaign:
     for i, raw in enumerate(raw_steps):
         steps.append(_parse_step(raw, i, source, _Context(seen, ids)))
         seen[steps[-1].id] = (i, steps[-1].plan)
-    return Campaign(name, desc, tuple(steps), source, text)
+    faults = _parse_sim(data.get("sim"), source, [st.id for st in steps])
+    return Campaign(name, desc, tuple(steps), source, text, faults)
+
+
+def _parse_sim(sim: Any, source: str, ids: list[str]) -> tuple[SimFault, ...]:
+    """``[sim]`` with ``[[sim.fault]]`` tables: faults for a simulated setup."""
+    if sim is None:
+        return ()
+    if not isinstance(sim, dict) or set(sim) - {"fault"}:
+        raise InputError(f"{source}: [sim] may hold only [[sim.fault]] tables; fix the file")
+    raw = sim.get("fault", [])
+    if not isinstance(raw, list):
+        raise InputError(f"{source}: [sim] fault must be [[sim.fault]] tables; fix the file")
+    out = []
+    for i, f in enumerate(raw):
+        at = f"{source}: [[sim.fault]] {i}"
+        if not isinstance(f, dict):
+            raise InputError(f"{at}: expected a table; fix the file")
+        kind = f.get("kind")
+        if not isinstance(kind, str) or kind not in SIM_FAULTS:
+            raise InputError(f"{at} key kind = {_toml(kind)}: not a fault of the simulated "
+                             f"laboratory; allowed are {', '.join(SIM_FAULTS)}")
+        step = f.get("step")
+        if step not in ids:
+            raise InputError(f"{at} key step = {_toml(step)}: not the id of a step; the steps "
+                             f"are {', '.join(ids)}")
+        allowed = SIM_FAULTS[kind]
+        for key in f:
+            if key not in ("kind", "step", "after", *allowed):
+                raise InputError(f"{at} key {key}: not a parameter of {kind}; allowed are "
+                                 f"step, after{''.join(', ' + k for k in allowed)}")
+        after = _literal(f.get("after", 0.0), Param("time"), f"{at} key after")
+        if after < 0:
+            raise InputError(f"{at} key after = {_toml(f.get('after'))}: must be >= 0 s")
+        params = {}
+        for key, (name, kind_) in allowed.items():
+            if key not in f:
+                raise InputError(f"{at} key {key} is missing: {kind} needs it; add it")
+            v = _literal(f[key], Param(kind_), f"{at} key {key}")
+            if kind_ in ("time", "dimensionless") and not v > 0:
+                raise InputError(f"{at} key {key} = {_toml(f[key])}: must be > 0")
+            params[name] = v
+        out.append(SimFault(kind, step, float(after), params))
+    return tuple(out)
 
 
 @dataclass(frozen=True)
@@ -600,6 +666,16 @@ def check_campaign(campaign: Campaign, setup: Setup, *,
     an uncharged particle. Raises :class:`~quietwell.InputError` (one line).
     """
     src = campaign.source
+    if campaign.faults and setup.kind != "sim":
+        raise InputError(f"{src}: [[sim.fault]] injects faults into the simulated laboratory, "
+                         f"and setup {setup.name!r} is of kind {setup.kind!r}; remove the [sim] "
+                         "section or use a simulated setup")
+    for f in campaign.faults:
+        if f.kind == "gauge_dropout" and f.params["name"] not in {
+                g.name for g in setup.vacuum.gauges}:
+            raise InputError(f"{src}: [[sim.fault]] gauge = {f.params['name']!r}: setup "
+                             f"{setup.name!r} has the gauges "
+                             f"{', '.join(g.name for g in setup.vacuum.gauges)}")
     out = CheckedCampaign(campaign, setup)
     state = before
     t = 0.0

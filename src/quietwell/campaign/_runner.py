@@ -387,6 +387,7 @@ class _Runner:
         self.progress.step(step.index, step.id, step.plan, checked.duration_s)
         target = _target(self._before(step.index), checked.needs)
         _quiet_re(session.RE, reach_state(session.apparatus, target))
+        self._inject_faults(step)
         md = {"campaign_id": self.cid, "campaign_step": step.index, "campaign_attempt": attempt,
               "campaign_step_id": step.id}
         self._docs.expect(step.index, attempt)
@@ -455,6 +456,19 @@ class _Runner:
             self._supersede(old, uid)
         if self.on_step is not None:
             self.on_step(step, uid, summary, session)
+
+    def _inject_faults(self, step) -> None:
+        """Schedule the campaign's ``[[sim.fault]]`` of this step in the simulated lab."""
+        lab = self.session.lab
+        for f in self.checked.campaign.faults:
+            if f.step != step.id or lab is None:
+                continue
+            at = lab.now + f.after_s
+            lab.schedule_fault(f.kind, at_s=at, **f.params)
+            self.ledger.append("fault_scheduled", step=step.index, kind=f.kind, at_s=at,
+                               params=f.params)
+            _log.info("sim fault %s scheduled at sim time %.1f s (step %s): %s", f.kind, at,
+                      step.id, f.params)
 
     def _fail(self, cs, attempt: int, uid: str | None, status: str, reason: str) -> None:
         self.ledger.append("failed", step=cs.step.index, attempt=attempt, uid=uid,
