@@ -198,7 +198,7 @@ class Recorder:
         readings.update(self.pick.values)
         yield from bps.save()
         self._saved += 1
-        clean = yield from self.monitors.after_record(readings)
+        clean = yield from self.monitors.after_record(readings, self.detectors[0])
         if clean:
             self.primaries.append(readings)
         else:

@@ -154,15 +154,26 @@ class Monitors:
         lo, hi = self._ranges.get(name, (0.0, math.inf))
         return not math.isfinite(p) or lo <= p <= hi
 
-    def after_record(self, readings: dict):
-        """Plan stub: True if the record is clean; raises for a lost particle."""
+    def after_record(self, readings: dict, detector: Any = None):
+        """Plan stub: True if the record is clean; raises for a lost particle.
+
+        The intensity threshold is at most half the digitiser's input range: a channel
+        clipped at a small range (set for microvolt motion) reads the range, not zero.
+        """
         spec = self.spec
         intensity = next((v for k, v in readings.items() if k.endswith("intensity_mean")),
                          None)
-        if (spec.intensity_min > 0 and isinstance(intensity, float)
-                and math.isfinite(intensity) and intensity < spec.intensity_min):
-            msg = (f"particle lost: intensity {intensity:.3g} V below intensity_min "
-                   f"{spec.intensity_min:g} V")
+        threshold = spec.intensity_min
+        rng = getattr(detector, "input_range", None)
+        if rng is not None and threshold > 0:
+            value = yield from bps.rd(rng)
+            if value is not None and math.isfinite(float(value)) and float(value) > 0:
+                threshold = min(threshold, 0.5 * float(value))
+        if (threshold > 0 and isinstance(intensity, float)
+                and math.isfinite(intensity) and intensity < threshold):
+            msg = (f"particle lost: intensity {intensity:.3g} V below the threshold "
+                   f"{threshold:.3g} V (intensity_min {spec.intensity_min:g} V, at most half "
+                   "the input range)")
             yield from self._emit("particle_lost", "end run, stop campaign", intensity, "V", msg)
             raise ParticleLostError(msg)
         fraction = yield from self._saturation()
