@@ -182,7 +182,7 @@ def thermal_calibration_plan(
         values.put("mass", m, "kg")
         values.put("mass_source", source, "")
         values.put("pressure", float(np.nanmean([r["pressure"] for r in rec.primaries])), "Pa")
-        yield from emit_summary(values)
+        yield from emit_summary(values, rec)
         return values.values
 
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))
@@ -286,7 +286,7 @@ def charge_calibration(
             yield from bps.mv(el.drive_enabled, False)
         values.update(_summarize_charge(per_step, thermal_fits, field, drive_frequency,
                                         setup.temperature))
-        yield from emit_summary(values)
+        yield from emit_summary(values, rec)
         return values.values
 
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))

@@ -240,8 +240,18 @@ class Recorder:
         return list(zip(self.primaries, self.fits, strict=False))
 
 
-def emit_summary(values: DerivedValues):
-    """Plan stub: one event in the ``summary`` stream with the derived results."""
+def emit_summary(values: DerivedValues, rec: Recorder | None = None):
+    """Plan stub: one event in the ``summary`` stream with the derived results.
+
+    With the run's recorder, the summary also says which records it used
+    (``records_used``: their ``seq_num`` in ``primary``) and how many were left out
+    because a monitor's condition held (``records_left_out``).
+    """
+    if rec is not None:
+        left = set(rec.left_out)
+        values.put("records_used", [float(i) for i in range(1, rec._saved + 1)
+                                    if i not in left] or [math.nan], "")
+        values.put("records_left_out", len(left), "")
     yield from bps.trigger_and_read([values], name="summary")
 
 

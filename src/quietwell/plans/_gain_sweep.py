@@ -210,7 +210,7 @@ def gain_sweep(
         values.update(_summarize_gain(app, steps, pressure))
         values.put("calibration_source", "setup" if calibration is None else "measured", "")
         values.put("steps_done", len(steps), "")
-        yield from emit_summary(values)
+        yield from emit_summary(values, rec)
         return values.values
 
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))

@@ -138,7 +138,7 @@ def pressure_sweep(
             yield from rec.flush()
         values.update(summarize_pressure_sweep(rec.pairs(), step_flags, rho,
                                                setup.temperature, gas.name))
-        yield from emit_summary(values)
+        yield from emit_summary(values, rec)
         return values.values
 
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))

@@ -189,7 +189,7 @@ def reheating_cycles(
         yield from rec.flush()
         yield from emit_ensemble()
         values.update(_summarize(app, rec, n_boot))
-        yield from emit_summary(values)
+        yield from emit_summary(values, rec)
         return values.values
 
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))

@@ -141,7 +141,7 @@ def sideband_thermometry(
         values.put("occupation", occ, "quanta")
         values.put("axis", axis, "")
         values.put("records_ok", len(ok), "")
-        yield from emit_summary(values)
+        yield from emit_summary(values, rec)
         return values.values
 
     return (yield from run_with_fitter(app, detectors, fitter, md_, body))
