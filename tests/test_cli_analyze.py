@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from quietwell.analysis import spectrum_model
-from quietwell.cli import default_nperseg, main
+from quietwell.cli import main
 
 TWO_PI = 2.0 * math.pi
 FS = 1e6
@@ -142,13 +142,6 @@ def test_subprocess_module_entry(npy_file):
     )  # fmt: skip
     assert res.returncode == 0, res.stderr
     check_against_truth(json.loads(res.stdout))
-
-
-def test_default_nperseg():
-    # documented rule: largest power of two <= 2**14 and <= n/16
-    assert default_nperseg(2**22) == 2**14
-    assert default_nperseg(2**17) == 2**13
-    assert default_nperseg(5000) == 256
 
 
 # ----------------------------------------------------------------- bad input

@@ -641,6 +641,7 @@ class _Spectrum:
     df: float
     nyquist: float | None = None
     window: np.ndarray | None = None
+    n_samples: int | None = None
 
 
 def _as_spectrum(spectrum) -> _Spectrum:
@@ -659,6 +660,7 @@ def _as_spectrum(spectrum) -> _Spectrum:
             df=float(spectrum.resolution_hz),
             nyquist=spectrum.sample_rate / 2.0,
             window=spectrum.window_values,
+            n_samples=spectrum.n_samples,
         )
     try:
         f, p, k = spectrum
@@ -681,6 +683,118 @@ def _as_spectrum(spectrum) -> _Spectrum:
     if not (math.isfinite(k) and k >= 1):
         raise InputError(f"n_averages={k} must be >= 1 (segments averaged in each bin)")
     return _Spectrum(f=f, p=p, k=k, r=1.0, df=df)
+
+
+def _band_bins(spec: _Spectrum, band) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The mask of the fitted bins in the spectrum's grid, their frequencies (Hz) and PSD."""
+    f_all, p_all, df, nyquist = spec.f, spec.p, spec.df, spec.nyquist
+    if band is None:
+        mask = f_all > 0
+        if nyquist is not None:
+            mask &= (f_all >= 2 * df) & (f_all < nyquist)
+    else:
+        try:
+            fmin, fmax = (float(v) for v in band)
+        except (TypeError, ValueError):
+            raise InputError(f"{band=} must be two frequencies (fmin, fmax) in Hz") from None
+        if not fmin < fmax:
+            raise InputError(f"{band=} must have fmin < fmax (Hz)")
+        mask = (f_all >= fmin) & (f_all <= fmax) & (f_all > 0)
+    f = f_all[mask]
+    p = p_all[mask]
+    if f.size < 10:
+        raise InputError(
+            f"the band {band=} holds {f.size} bins; at least 10 are needed: widen the band "
+            "or use longer segments"
+        )
+    if not np.all(np.isfinite(p)):
+        raise InputError("the PSD has non-finite values in the band; check the record")
+    if not np.all(p > 0):
+        raise InputError("the PSD has bins <= 0 in the band; a fit needs a positive floor (noise)")
+    return mask, f, p
+
+
+def _guesses(
+    f: np.ndarray, p: np.ndarray, k: float, r: float, floor: float, peaks
+) -> list[tuple[float, float, float]]:
+    """Candidate lines: ``(f0, gamma, area)`` initial values, in order of ``f0``."""
+    width = _smooth_width(k)
+    smooth = scipy.ndimage.uniform_filter1d(p, width, mode="nearest")
+    if peaks is None or isinstance(peaks, (int, np.integer)):
+        wanted = None if peaks is None else int(peaks)
+        if wanted is not None and wanted < 1:
+            raise InputError(f"peaks={wanted} must be >= 1 (number of peaks to fit)")
+        idx = _find_peaks(f, p, k, r, floor, wanted)
+        if not idx or (wanted is not None and len(idx) < wanted):
+            raise UnresolvedPeakError(
+                f"found {len(idx)} peak(s) above the floor ({floor:.3g} units**2/Hz) in "
+                f"{f[0]:.6g}..{f[-1]:.6g} Hz, "
+                + (f"asked for {wanted}; " if wanted is not None else "")
+                + "use a longer record (more averages), a narrower band or give the "
+                "peak frequencies"
+            )
+        return [_initial_peak(f, smooth, i, floor, width) for i in sorted(idx)]
+    guesses = []
+    for f0 in peaks:
+        f0 = float(f0)
+        if not f[0] < f0 < f[-1]:
+            raise InputError(
+                f"initial peak frequency {f0=} Hz is outside the fitted band {f[0]:.6g}..{f[-1]:.6g} Hz"
+            )
+        i = int(np.argmin(np.abs(f - f0)))
+        lo, hi = max(0, i - width), min(f.size, i + width + 1)
+        i = lo + int(np.argmax(smooth[lo:hi]))
+        guesses.append(_initial_peak(f, smooth, i, floor, width))
+    if not guesses:
+        raise InputError("peaks is an empty list; give at least one frequency in Hz")
+    guesses.sort()
+    return guesses
+
+
+def _longer_hint(spec: _Spectrum, linewidth_hz: float) -> str:
+    """What resolves a narrow line: longer segments, or a longer record if the
+    segment is already the whole record."""
+    hint = "use longer segments (larger nperseg)"
+    if spec.window is None or spec.nyquist is None or spec.n_samples is None:
+        return hint
+    if spec.window.size < spec.n_samples:
+        return hint
+    from quietwell.analysis._resolution import required_samples
+
+    fs = 2.0 * spec.nyquist
+    # a width the fit collapsed towards zero gives only a lower bound on the length
+    needed = required_samples(max(linewidth_hz, 0.1 * spec.df), fs)
+    return (f"the segment is the whole record: a record of at least {needed} samples "
+            f"({needed / fs:.3g} s) would resolve it")
+
+
+def _line_widths(
+    psd: PSDResult, *, peaks=None, band=None
+) -> list[tuple[float, float]]:
+    """``(f0, fwhm)`` in Hz of the candidate lines of a 1-D PSD, from the same search
+    and initial values as :func:`fit_psd`; empty where no line is found."""
+    spec = _as_spectrum(psd)
+    _, f, p = _band_bins(spec, band)
+    floor = _floor_estimate(p, spec.k)
+    try:
+        guesses = _guesses(f, p, spec.k, spec.r, floor, peaks)
+    except UnresolvedPeakError:
+        return []
+    out = []
+    for f0, gamma, _ in guesses:
+        i = int(np.argmin(np.abs(f - f0)))
+        fwhm_bins = gamma / _TWO_PI / spec.df
+        for _ in range(2):
+            # The peak of a lightly smoothed spectrum sits on an upward noise excursion,
+            # which narrows the half-maximum width: smooth over a third of the width found.
+            box = max(3, 2 * int(fwhm_bins / 6.0) + 1)
+            smooth = scipy.ndimage.uniform_filter1d(p, box, mode="nearest")
+            lo, hi = max(0, i - box), min(p.size, i + box + 1)
+            j = lo + int(np.argmax(smooth[lo:hi]))
+            _, g, _ = _initial_peak(f, smooth, j, floor, box)
+            fwhm_bins = g / _TWO_PI / spec.df
+        out.append((float(f[j]), fwhm_bins * spec.df))
+    return out
 
 
 def fit_psd(
@@ -756,63 +870,10 @@ def fit_psd(
     True
     """
     spec = _as_spectrum(spectrum)
-    f_all, p_all, k, r, df, nyquist = spec.f, spec.p, spec.k, spec.r, spec.df, spec.nyquist
-    if band is None:
-        mask = f_all > 0
-        if nyquist is not None:
-            mask &= (f_all >= 2 * df) & (f_all < nyquist)
-    else:
-        try:
-            fmin, fmax = (float(v) for v in band)
-        except (TypeError, ValueError):
-            raise InputError(f"{band=} must be two frequencies (fmin, fmax) in Hz") from None
-        if not fmin < fmax:
-            raise InputError(f"{band=} must have fmin < fmax (Hz)")
-        mask = (f_all >= fmin) & (f_all <= fmax) & (f_all > 0)
-    f = f_all[mask]
-    p = p_all[mask]
-    if f.size < 10:
-        raise InputError(
-            f"the band {band=} holds {f.size} bins; at least 10 are needed: widen the band "
-            "or use longer segments"
-        )
-    if not np.all(np.isfinite(p)):
-        raise InputError("the PSD has non-finite values in the band; check the record")
-    if not np.all(p > 0):
-        raise InputError("the PSD has bins <= 0 in the band; a fit needs a positive floor (noise)")
-
+    k, r, df, nyquist = spec.k, spec.r, spec.df, spec.nyquist
+    mask, f, p = _band_bins(spec, band)
     floor = _floor_estimate(p, k)
-    width = _smooth_width(k)
-    smooth = scipy.ndimage.uniform_filter1d(p, width, mode="nearest")
-    if peaks is None or isinstance(peaks, (int, np.integer)):
-        wanted = None if peaks is None else int(peaks)
-        if wanted is not None and wanted < 1:
-            raise InputError(f"peaks={wanted} must be >= 1 (number of peaks to fit)")
-        idx = _find_peaks(f, p, k, r, floor, wanted)
-        if not idx or (wanted is not None and len(idx) < wanted):
-            raise UnresolvedPeakError(
-                f"found {len(idx)} peak(s) above the floor ({floor:.3g} units**2/Hz) in "
-                f"{f[0]:.6g}..{f[-1]:.6g} Hz, "
-                + (f"asked for {wanted}; " if wanted is not None else "")
-                + "use a longer record (more averages), a narrower band or give the "
-                "peak frequencies"
-            )
-        guesses = [_initial_peak(f, smooth, i, floor, width) for i in sorted(idx)]
-    else:
-        guesses = []
-        for f0 in peaks:
-            f0 = float(f0)
-            if not f[0] < f0 < f[-1]:
-                raise InputError(
-                    f"initial peak frequency {f0=} Hz is outside the fitted band {f[0]:.6g}..{f[-1]:.6g} Hz"
-                )
-            i = int(np.argmin(np.abs(f - f0)))
-            lo, hi = max(0, i - width), min(f.size, i + width + 1)
-            i = lo + int(np.argmax(smooth[lo:hi]))
-            guesses.append(_initial_peak(f, smooth, i, floor, width))
-        if not guesses:
-            raise InputError("peaks is an empty list; give at least one frequency in Hz")
-        guesses.sort()
+    guesses = _guesses(f, p, k, r, floor, peaks)
 
     n_peaks = len(guesses)
     prob = _Problem(
@@ -881,7 +942,7 @@ def fit_psd(
             raise UnresolvedPeakError(
                 f"peak near f0={f0[j]:.6g} Hz has linewidth gamma/2pi={gamma[j] / _TWO_PI:.3g} "
                 f"Hz, below {min_linewidth_bins:g} bins ({min_linewidth_bins * df:.3g} Hz at "
-                f"{df:.3g} Hz per bin); use longer segments (larger nperseg)"
+                f"{df:.3g} Hz per bin); " + _longer_hint(spec, gamma[j] / _TWO_PI)
             )
     # Converged when the Newton step would lower the negative log-likelihood by
     # far less than one unit, whatever the optimiser's own verdict.

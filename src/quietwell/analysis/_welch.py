@@ -112,6 +112,11 @@ class PSDResult:
     window_values: np.ndarray = field(repr=False)
 
     @property
+    def n_samples(self) -> int:
+        """Samples of the record used by the segments (per channel)."""
+        return (self.n_segments - 1) * (self.nperseg - self.noverlap) + self.nperseg
+
+    @property
     def n_channels(self) -> int:
         """Number of channels (1 for a 1-D record)."""
         return 1 if self.psd.ndim == 1 else self.psd.shape[0]
