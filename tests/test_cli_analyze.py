@@ -223,3 +223,38 @@ def test_bad_input_in_a_subprocess_has_no_traceback(tmp_path):
 def test_help_exits_0(capsys):
     assert main(["analyze", "--help"]) == 0
     assert "--sample-rate" in capsys.readouterr().out
+
+
+# ------------------------------------------------------- channels fail alone
+
+
+@pytest.fixture(scope="module")
+def one_bad_channel(record, tmp_path_factory):
+    bad = record.copy()
+    bad[1] = np.random.default_rng(9).normal(scale=math.sqrt(1e-12 * FS / 2), size=N)  # no line
+    path = tmp_path_factory.mktemp("rec") / "one_bad.npy"
+    np.save(path, bad)
+    return path
+
+
+def test_a_failed_channel_does_not_hide_the_others_json(one_bad_channel, capsys):
+    code, out, err = run(["analyze", one_bad_channel, "--sample-rate", FS, "--json"], capsys)
+    assert code == 3  # documented: some channels failed
+    assert len(err.strip().splitlines()) == 1 and "1 of 3" in err
+    doc = json.loads(out)
+    chans = doc["channels"]
+    assert [c["status"] for c in chans] == ["ok", "failed", "ok"]
+    assert chans[1]["error_type"] == "UnresolvedPeakError"
+    assert "found 0 peak" in chans[1]["error"]
+    for i in (0, 2):
+        f0, gamma, area, _ = TRUTH[i]
+        (pk,) = chans[i]["peaks"]
+        assert abs(pk["f0_hz"] - f0) < 5 * pk["f0_hz_stderr"]
+        assert abs(pk["gamma"] - gamma) < 5 * pk["gamma_stderr"]
+
+
+def test_a_failed_channel_does_not_hide_the_others_table(one_bad_channel, capsys):
+    code, out, _ = run(["analyze", one_bad_channel, "--sample-rate", FS], capsys)
+    assert code == 3
+    assert "channel 1: FAILED (UnresolvedPeakError)" in out
+    assert "channel 0: background" in out and "channel 2: background" in out

@@ -133,21 +133,47 @@ def run(args: argparse.Namespace) -> int:
         try:
             channels.append(_fit_channel(row, trace.sample_rate, i, args))
         except QuietwellError as exc:
-            where = f"{trace.source}, channel {i}" if trace.data.ndim == 2 else trace.source
-            raise type(exc)(f"{where}: {exc}") from None
+            # A channel fails alone: the others are still fitted and printed.
+            channels.append(_Channel(index=i, error=" ".join(str(exc).split()),
+                                     error_type=type(exc).__name__))
+    failed = [c for c in channels if c.fit is None]
+    if len(failed) == len(channels):
+        c = failed[0]
+        where = f"{trace.source}, channel {c.index}" if trace.data.ndim == 2 else trace.source
+        more = f" (and {len(failed) - 1} other channel(s) failed)" if len(failed) > 1 else ""
+        raise _error_type(c.error_type)(f"{where}: {c.error}{more}")
     if args.json:
-        out = {
-            "channels": [
-                {"index": c.index, "nperseg": c.psd.nperseg, "resolution_hz": c.psd.resolution_hz,
-                 "peaks": [pk.as_dict() for pk in c.fit.peaks]}
-                for c in channels
-            ]
-        }
-        print(json.dumps(out))
+        print(json.dumps({"channels": [_channel_json(c) for c in channels]}))
     else:
         print(_table(trace, channels, args.units))
     sys.stdout.flush()
+    if failed:
+        print(
+            f"quietwell analyze: {len(failed)} of {len(channels)} channel(s) of {trace.source} "
+            f"failed (channel(s) {', '.join(str(c.index) for c in failed)}); see the "
+            "reasons in the output",
+            file=sys.stderr,
+        )
+        return EXIT_SOME_FAILED
     return EXIT_OK
+
+
+def _error_type(name: str) -> type:
+    from quietwell import _errors
+
+    return getattr(_errors, name, _errors.QuietwellError)
+
+
+def _channel_json(c: _Channel) -> dict:
+    if c.fit is None:
+        return {"index": c.index, "status": "failed", "error_type": c.error_type, "error": c.error}
+    return {
+        "index": c.index,
+        "status": "ok",
+        "nperseg": c.psd.nperseg,
+        "resolution_hz": c.psd.resolution_hz,
+        "peaks": [pk.as_dict() for pk in c.fit.peaks],
+    }
 
 
 def _pm(value: float, err: float) -> str:
