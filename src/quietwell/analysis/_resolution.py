@@ -184,14 +184,17 @@ def choose_segment_length(
     n = int(np.shape(x)[-1])
     first = segment_length(n)
     psd = welch_psd(x, sample_rate, nperseg=first, noverlap=first // 2, workers=1)
-    lines = _line_widths(psd, peaks=peaks, band=band)
+    lines = _line_widths(psd, peaks=peaks, band=band, narrow=True)
     if not lines:
         return SegmentChoice(nperseg=first, lines=(), psd=psd)
     narrow = min(w for _, w in lines)
     if narrow < MIN_LINE_BINS * psd.resolution_hz and first < n:
         # Possibly limited by the first pass's resolution: measure on the whole record.
         whole = welch_psd(x, sample_rate, nperseg=n, noverlap=0, workers=1)
-        again = _line_widths(whole, peaks=[f for f, _ in lines], band=band)
-        lines = again or lines
+        # Only lines wider than the whole record's resolution count (a single high
+        # bin or a pure tone is no damped line); those narrower than 3 bins are refused.
+        lines = _line_widths(whole, peaks=peaks, band=band)
+        if not lines:
+            return SegmentChoice(nperseg=first, lines=(), psd=psd)
     nperseg = segment_length(n, sample_rate, [w for _, w in lines])
     return SegmentChoice(nperseg=nperseg, lines=tuple(lines), psd=psd if nperseg == first else None)
