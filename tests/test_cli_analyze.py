@@ -258,3 +258,17 @@ def test_a_failed_channel_does_not_hide_the_others_table(one_bad_channel, capsys
     assert code == 3
     assert "channel 1: FAILED (UnresolvedPeakError)" in out
     assert "channel 0: background" in out and "channel 2: background" in out
+
+
+def test_analyze_path_does_not_import_heavy_modules(npy_file):
+    # start fast: scipy.signal and scipy.stats (about 0.7 s of imports) are not needed
+    code = (
+        "import sys; from quietwell.cli import main; "
+        f"rc = main(['analyze', {str(npy_file)!r}, '--sample-rate', '{FS}', '--json']); "
+        "heavy = [m for m in ('scipy.signal', 'scipy.stats', 'scipy.optimize') if m in sys.modules]; "
+        "print(heavy, file=sys.stderr); sys.exit(rc if not heavy else 9)"
+    )
+    env = {**os.environ, "PYTHONPATH": str(Path("src").resolve())}
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
+                         env=env, cwd=Path(__file__).resolve().parents[1])
+    assert res.returncode == 0, res.stderr

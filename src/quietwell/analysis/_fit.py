@@ -21,8 +21,6 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.fft
 import scipy.ndimage
-import scipy.optimize
-import scipy.signal
 import scipy.special
 from numpy.typing import ArrayLike
 
@@ -535,7 +533,11 @@ def _lag_window(w: np.ndarray) -> np.ndarray:
     key = (w.size, hash(w.tobytes()))
     lag = _LAG_WINDOWS.get(key)
     if lag is None:
-        full = scipy.signal.correlate(w, w, mode="full", method="fft")[w.size - 1 :]
+        # autocorrelation by FFT (zero-padded to 2N: no wrap-around), as
+        # scipy.signal.correlate(w, w, method="fft") without importing scipy.signal
+        n_fft = scipy.fft.next_fast_len(2 * w.size)
+        spec = scipy.fft.rfft(w, n_fft)
+        full = scipy.fft.irfft(spec.real**2 + spec.imag**2, n_fft)[: w.size]
         lag = full / _dot(w, w)
         lag.setflags(write=False)
         if len(_LAG_WINDOWS) > 16:
