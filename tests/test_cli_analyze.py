@@ -272,3 +272,35 @@ def test_analyze_path_does_not_import_heavy_modules(npy_file):
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
                          env=env, cwd=Path(__file__).resolve().parents[1])
     assert res.returncode == 0, res.stderr
+
+
+# ------------------------------------------- quietwell raw files, several files
+
+
+def test_quietwell_raw_file_records_are_records(record, tmp_path, capsys):
+    # the layout of quietwell.devices._trace_file.TraceFile: /traces/<ch> (records, samples)
+    # and /records/sample_rate (Hz, one per record)
+    from quietwell.devices._trace_file import TraceFile
+
+    tf = TraceFile(tmp_path / "raw.h5", ["x", "y"], N)
+    for i in range(2):
+        tf.append({"x": record[0] if i == 0 else record[2], "y": record[1]}, float(i), FS)
+    tf.close()
+    code, out, err = run(["analyze", tmp_path / "raw.h5", "--dataset", "traces/x", "--json"], capsys)
+    assert code == 0, err
+    files = json.loads(out)["files"]
+    assert [f["source"].split(":")[-1] for f in files] == ["traces/x[record 0]", "traces/x[record 1]"]
+    for doc, truth in zip(files, (TRUTH[0], TRUTH[2]), strict=True):
+        (pk,) = doc["channels"][0]["peaks"]
+        assert abs(pk["f0_hz"] - truth[0]) < 5 * pk["f0_hz_stderr"]
+
+
+def test_several_files_folder_and_glob(npy_file, one_bad_channel, tmp_path, capsys):
+    code, out, _ = run(["analyze", npy_file, npy_file.parent / "*.npy", "--sample-rate", FS,
+                        "--json"], capsys)
+    assert code == 0
+    files = json.loads(out)["files"]
+    assert len(files) == 2 and all(len(f["channels"]) == 3 for f in files)
+    # a folder, with a file whose channel fails: the others are kept, exit 3
+    code, out, err = run(["analyze", one_bad_channel.parent, npy_file, "--sample-rate", FS], capsys)
+    assert code == 3 and "FAILED" in out and out.count("channel 0: background") == 2

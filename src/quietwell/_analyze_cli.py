@@ -46,7 +46,12 @@ def _positive_float(text: str) -> float:
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """The arguments of ``quietwell analyze``."""
-    parser.add_argument("file", metavar="FILE", help=".npy (1-D or channels x samples) or HDF5")
+    parser.add_argument(
+        "file", metavar="FILE", nargs="+",
+        help=(".npy (1-D or channels x samples) or HDF5 (a quietwell raw file: every record "
+              "of every trace); several files, folders or glob patterns are fitted in one "
+              "process"),
+    )
     parser.add_argument(
         "--sample-rate",
         type=_positive_float,
@@ -121,12 +126,39 @@ def _fit_channel(row, rate: float, index: int, args) -> _Channel:
     return _Channel(index=index, psd=psd, fit=fit)
 
 
-def run(args: argparse.Namespace) -> int:
-    """Run ``quietwell analyze``; returns the exit status."""
-    from quietwell._errors import QuietwellError
-    from quietwell.analysis._io import load_trace
+def _expand(patterns: list[str]) -> list[str]:
+    """Files named by ``patterns``: a folder gives its .npy and HDF5 files, a pattern
+    with ``*``, ``?`` or ``[`` its matches (sorted); anything else is taken as a file."""
+    import glob
+    from pathlib import Path
 
-    trace = load_trace(args.file, dataset=args.dataset, sample_rate=args.sample_rate)
+    from quietwell._errors import InputError
+    from quietwell.analysis._io import HDF5_SUFFIXES
+
+    out: list[str] = []
+    for item in patterns:
+        path = Path(item)
+        if path.is_dir():
+            found = sorted(str(q) for q in path.iterdir()
+                           if q.is_file() and q.suffix.lower() in (".npy", *HDF5_SUFFIXES))
+            if not found:
+                raise InputError(
+                    f"{item}: folder holds no .npy or HDF5 file; give files or a folder of records"
+                )
+            out += found
+        elif any(c in item for c in "*?["):
+            found = sorted(glob.glob(item))
+            if not found:
+                raise InputError(f"{item}: pattern matches no file; check the pattern")
+            out += found
+        else:
+            out.append(item)
+    return out
+
+
+def _fit_trace(trace, args) -> list[_Channel]:
+    from quietwell._errors import QuietwellError
+
     rows = trace.data if trace.data.ndim == 2 else trace.data[None]
     channels = []
     for i, row in enumerate(rows):
@@ -136,22 +168,50 @@ def run(args: argparse.Namespace) -> int:
             # A channel fails alone: the others are still fitted and printed.
             channels.append(_Channel(index=i, error=" ".join(str(exc).split()),
                                      error_type=type(exc).__name__))
-    failed = [c for c in channels if c.fit is None]
+    return channels
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run ``quietwell analyze``; returns the exit status."""
+    from quietwell._errors import QuietwellError
+    from quietwell.analysis._io import load_records
+
+    files = _expand(list(args.file))
+    results = []  # (source, trace or None, channels)
+    for name in files:
+        try:
+            traces = load_records(name, dataset=args.dataset, sample_rate=args.sample_rate)
+        except QuietwellError as exc:
+            if len(files) == 1:
+                raise
+            results.append((name, None, [_Channel(index=0, error=" ".join(str(exc).split()),
+                                                  error_type=type(exc).__name__)]))
+            continue
+        for trace in traces:
+            results.append((trace.source, trace, _fit_trace(trace, args)))
+    channels = [c for _, _, chans in results for c in chans]
+    failed = [(src, c) for src, _, chans in results for c in chans if c.fit is None]
     if len(failed) == len(channels):
-        c = failed[0]
-        where = f"{trace.source}, channel {c.index}" if trace.data.ndim == 2 else trace.source
+        src, c = failed[0]
+        trace = results[0][1]
+        where = f"{src}, channel {c.index}" if trace is not None and trace.data.ndim == 2 else src
         more = f" (and {len(failed) - 1} other channel(s) failed)" if len(failed) > 1 else ""
         raise _error_type(c.error_type)(f"{where}: {c.error}{more}")
     if args.json:
-        print(json.dumps({"channels": [_channel_json(c) for c in channels]}))
+        if len(results) == 1:
+            doc = {"channels": [_channel_json(c) for c in results[0][2]]}
+        else:
+            doc = {"files": [{"source": src, "channels": [_channel_json(c) for c in chans]}
+                             for src, _, chans in results]}
+        print(json.dumps(doc))
     else:
-        print(_table(trace, channels, args.units))
+        print("\n".join(_table(src, trace, chans, args.units) for src, trace, chans in results))
     sys.stdout.flush()
     if failed:
+        where = ", ".join(f"{src} channel {c.index}" for src, c in failed[:5])
         print(
-            f"quietwell analyze: {len(failed)} of {len(channels)} channel(s) of {trace.source} "
-            f"failed (channel(s) {', '.join(str(c.index) for c in failed)}); see the "
-            "reasons in the output",
+            f"quietwell analyze: {len(failed)} of {len(channels)} channel(s) failed ({where}"
+            f"{', ...' if len(failed) > 5 else ''}); see the reasons in the output",
             file=sys.stderr,
         )
         return EXIT_SOME_FAILED
@@ -188,10 +248,13 @@ def _pm(value: float, err: float) -> str:
     return f"{value:.{digits}e} ± {err:.1e}"
 
 
-def _table(trace, channels, units: str) -> str:
+def _table(source, trace, channels, units: str) -> str:
     u2 = f"{units}**2"
-    shape = " x ".join(str(s) for s in trace.data.shape)
-    lines = [f"{trace.source}: {shape} samples at {trace.sample_rate:.6g} Hz (units of the record: {units})"]
+    if trace is None:
+        lines = [f"{source}: not read"]
+    else:
+        shape = " x ".join(str(s) for s in trace.data.shape)
+        lines = [f"{source}: {shape} samples at {trace.sample_rate:.6g} Hz (units of the record: {units})"]
     head = f"  {'peak':>4}  {'f0 [Hz]':>24}  {'gamma [1/s]':>22}  {'area [' + u2 + ']':>24}"
     for c in channels:
         if c.fit is None:
