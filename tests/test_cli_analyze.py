@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from quietwell.analysis import spectrum_model
-from quietwell.cli import default_nperseg, main
+from quietwell.cli import main
 
 TWO_PI = 2.0 * math.pi
 FS = 1e6
@@ -144,13 +144,6 @@ def test_subprocess_module_entry(npy_file):
     check_against_truth(json.loads(res.stdout))
 
 
-def test_default_nperseg():
-    # documented rule: largest power of two <= 2**14 and <= n/16
-    assert default_nperseg(2**22) == 2**14
-    assert default_nperseg(2**17) == 2**13
-    assert default_nperseg(5000) == 256
-
-
 # ----------------------------------------------------------------- bad input
 
 
@@ -230,3 +223,84 @@ def test_bad_input_in_a_subprocess_has_no_traceback(tmp_path):
 def test_help_exits_0(capsys):
     assert main(["analyze", "--help"]) == 0
     assert "--sample-rate" in capsys.readouterr().out
+
+
+# ------------------------------------------------------- channels fail alone
+
+
+@pytest.fixture(scope="module")
+def one_bad_channel(record, tmp_path_factory):
+    bad = record.copy()
+    bad[1] = np.random.default_rng(9).normal(scale=math.sqrt(1e-12 * FS / 2), size=N)  # no line
+    path = tmp_path_factory.mktemp("rec") / "one_bad.npy"
+    np.save(path, bad)
+    return path
+
+
+def test_a_failed_channel_does_not_hide_the_others_json(one_bad_channel, capsys):
+    code, out, err = run(["analyze", one_bad_channel, "--sample-rate", FS, "--json"], capsys)
+    assert code == 3  # documented: some channels failed
+    assert len(err.strip().splitlines()) == 1 and "1 of 3" in err
+    doc = json.loads(out)
+    chans = doc["channels"]
+    assert [c["status"] for c in chans] == ["ok", "failed", "ok"]
+    assert chans[1]["error_type"] == "UnresolvedPeakError"
+    assert "found 0 peak" in chans[1]["error"]
+    for i in (0, 2):
+        f0, gamma, area, _ = TRUTH[i]
+        (pk,) = chans[i]["peaks"]
+        assert abs(pk["f0_hz"] - f0) < 5 * pk["f0_hz_stderr"]
+        assert abs(pk["gamma"] - gamma) < 5 * pk["gamma_stderr"]
+
+
+def test_a_failed_channel_does_not_hide_the_others_table(one_bad_channel, capsys):
+    code, out, _ = run(["analyze", one_bad_channel, "--sample-rate", FS], capsys)
+    assert code == 3
+    assert "channel 1: FAILED (UnresolvedPeakError)" in out
+    assert "channel 0: background" in out and "channel 2: background" in out
+
+
+def test_analyze_path_does_not_import_heavy_modules(npy_file):
+    # start fast: scipy.signal and scipy.stats (about 0.7 s of imports) are not needed
+    code = (
+        "import sys; from quietwell.cli import main; "
+        f"rc = main(['analyze', {str(npy_file)!r}, '--sample-rate', '{FS}', '--json']); "
+        "heavy = [m for m in ('scipy.signal', 'scipy.stats', 'scipy.optimize') if m in sys.modules]; "
+        "print(heavy, file=sys.stderr); sys.exit(rc if not heavy else 9)"
+    )
+    env = {**os.environ, "PYTHONPATH": str(Path("src").resolve())}
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
+                         env=env, cwd=Path(__file__).resolve().parents[1])
+    assert res.returncode == 0, res.stderr
+
+
+# ------------------------------------------- quietwell raw files, several files
+
+
+def test_quietwell_raw_file_records_are_records(record, tmp_path, capsys):
+    # the layout of quietwell.devices._trace_file.TraceFile: /traces/<ch> (records, samples)
+    # and /records/sample_rate (Hz, one per record)
+    from quietwell.devices._trace_file import TraceFile
+
+    tf = TraceFile(tmp_path / "raw.h5", ["x", "y"], N)
+    for i in range(2):
+        tf.append({"x": record[0] if i == 0 else record[2], "y": record[1]}, float(i), FS)
+    tf.close()
+    code, out, err = run(["analyze", tmp_path / "raw.h5", "--dataset", "traces/x", "--json"], capsys)
+    assert code == 0, err
+    files = json.loads(out)["files"]
+    assert [f["source"].split(":")[-1] for f in files] == ["traces/x[record 0]", "traces/x[record 1]"]
+    for doc, truth in zip(files, (TRUTH[0], TRUTH[2]), strict=True):
+        (pk,) = doc["channels"][0]["peaks"]
+        assert abs(pk["f0_hz"] - truth[0]) < 5 * pk["f0_hz_stderr"]
+
+
+def test_several_files_folder_and_glob(npy_file, one_bad_channel, tmp_path, capsys):
+    code, out, _ = run(["analyze", npy_file, npy_file.parent / "*.npy", "--sample-rate", FS,
+                        "--json"], capsys)
+    assert code == 0
+    files = json.loads(out)["files"]
+    assert len(files) == 2 and all(len(f["channels"]) == 3 for f in files)
+    # a folder, with a file whose channel fails: the others are kept, exit 3
+    code, out, err = run(["analyze", one_bad_channel.parent, npy_file, "--sample-rate", FS], capsys)
+    assert code == 3 and "FAILED" in out and out.count("channel 0: background") == 2

@@ -257,8 +257,13 @@ def test_narrow_peak_is_unresolved():
     f = np.arange(1, 2001) * 50.0
     truth = [(20e3, TWO_PI * 40.0, 1e-6)]  # linewidth 0.8 bin
     p = gamma_spectrum(f, truth, 1e-12, k=50, seed=7)
+    # the search does not count a candidate narrower than the resolution, and says so
     with pytest.raises(UnresolvedPeakError, match="longer segments") as info:
         fit_psd((f, p, 50))
+    assert "narrower one(s) near 20000 Hz" in str(info.value)
+    # given its frequency, the fit finds the width below 3 bins
+    with pytest.raises(UnresolvedPeakError, match="longer segments") as info:
+        fit_psd((f, p, 50), peaks=[20e3])
     assert "gamma/2pi=" in str(info.value)
 
 

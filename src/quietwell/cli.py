@@ -11,6 +11,7 @@ returns the exit status.  Add one with :func:`subcommand`::
     def _demo(args) -> int: ...
 
 Exit status: 0 success, 2 bad input (one line on stderr, never a traceback),
+3 (analyze) some channels failed and are reported with their reasons,
 1 an unexpected internal error (also one line).
 """
 
@@ -18,14 +19,13 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import sys
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 from quietwell._errors import QuietwellError
 
-__all__ = ["main", "subcommand", "SUBCOMMANDS", "default_nperseg"]
+__all__ = ["main", "subcommand", "SUBCOMMANDS"]
 
 EXIT_OK = 0
 EXIT_INTERNAL = 1
@@ -136,157 +136,18 @@ def _one_line(exc: BaseException) -> str:
 # analyze
 # --------------------------------------------------------------------------
 
-#: Largest default segment length: 2**14 samples, i.e. 61 Hz bins at 1 MS/s,
-#: so linewidths from about 200 Hz (3 bins) are resolved at that rate.
-MAX_DEFAULT_NPERSEG = 2**14
-#: The default segment length leaves at least this many segments to average.
-MIN_DEFAULT_SEGMENTS = 16
-
-
-def default_nperseg(n: int) -> int:
-    """Default Welch segment length for a record of ``n`` samples.
-
-    The largest power of two that is at most ``2**14`` and at most
-    ``n / 16`` (so at least 16, with 50 % overlap 31, segments are averaged),
-    and at least 16 samples.
-    """
-    if n < 16:
-        return 16
-    return int(max(16, min(MAX_DEFAULT_NPERSEG, 2 ** math.floor(math.log2(n / MIN_DEFAULT_SEGMENTS)))))
-
-
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"{value} must be >= 1")
-    return value
-
-
-def _positive_float(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if not (math.isfinite(value) and value > 0):
-        raise argparse.ArgumentTypeError(f"{value} must be finite and > 0")
-    return value
-
-
 @subcommand("analyze", help="Welch PSD and maximum-likelihood fit of the peaks of a record.")
 def _analyze_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("file", metavar="FILE", help=".npy (1-D or channels x samples) or HDF5")
-    parser.add_argument(
-        "--sample-rate",
-        type=_positive_float,
-        metavar="HZ",
-        help="sample rate in Hz (overrides a 'sample_rate' attribute of an HDF5 file)",
-    )
-    parser.add_argument("--dataset", metavar="PATH", help="dataset inside an HDF5 file")
-    parser.add_argument(
-        "--nperseg",
-        type=_positive_int,
-        metavar="N",
-        help=(
-            "samples per Welch segment (default: the largest power of two <= 2**14 and "
-            "<= samples/16); 50%% overlap, Hann window"
-        ),
-    )
-    parser.add_argument(
-        "--peaks",
-        type=_positive_int,
-        metavar="N",
-        help="peaks to fit per channel (default: every peak 6 sigma above the floor)",
-    )
-    parser.add_argument(
-        "--band",
-        type=float,
-        nargs=2,
-        metavar=("FMIN", "FMAX"),
-        help="fit only this frequency band in Hz",
-    )
-    parser.add_argument("--units", default="V", metavar="U", help="units of the record's samples (default V)")
-    parser.add_argument("--json", action="store_true", help="print one JSON object")
+    from quietwell._analyze_cli import add_arguments
+
+    add_arguments(parser)
 
 
 @_analyze_arguments.runner
 def _analyze(args: argparse.Namespace) -> int:
-    # Imported here so that `quietwell --help` stays fast.
-    from quietwell._errors import InputError
-    from quietwell.analysis import fit_channels, welch_psd
-    from quietwell.analysis._io import load_trace
+    from quietwell._analyze_cli import run
 
-    trace = load_trace(args.file, dataset=args.dataset, sample_rate=args.sample_rate)
-    n = trace.data.shape[-1]
-    nperseg = args.nperseg if args.nperseg is not None else default_nperseg(n)
-    if nperseg > n:
-        raise InputError(
-            f"{trace.source}: the record has {n} samples, too short for one segment of "
-            f"{nperseg=}; give a longer record or --nperseg <= {n}"
-        )
-    if nperseg < 16:
-        raise InputError(f"--nperseg {nperseg} must be >= 16")
-    try:
-        psd = welch_psd(trace.data, trace.sample_rate, nperseg=nperseg, noverlap=nperseg // 2)
-    except InputError as exc:
-        raise InputError(f"{trace.source}: {exc}") from None
-    try:
-        channels = fit_channels(psd, peaks=args.peaks, band=args.band)
-    except QuietwellError as exc:
-        raise type(exc)(
-            f"{trace.source}, {exc} (nperseg={nperseg}, {psd.resolution_hz:.4g} Hz per bin)"
-        ) from None
-    if args.json:
-        out = {
-            "channels": [
-                {"index": i, "peaks": [pk.as_dict() for pk in fit.peaks]} for i, fit in enumerate(channels)
-            ]
-        }
-        print(json.dumps(out))
-    else:
-        print(_table(trace, psd, channels, args.units))
-    return EXIT_OK
-
-
-def _pm(value: float, err: float) -> str:
-    """``value ± err`` with the error to two significant digits and the value to match."""
-    if not (math.isfinite(err) and err > 0 and math.isfinite(value)):
-        return f"{value:.6g} ± {err:.2g}"
-    if 1e-3 <= abs(value) < 1e7 and err >= 1e-6:
-        digits = max(0, 1 - math.floor(math.log10(err)))
-        return f"{value:.{digits}f} ± {err:.{digits}f}"
-    exp = math.floor(math.log10(abs(value))) if value else 0
-    digits = max(1, min(8, exp - math.floor(math.log10(err)) + 1))
-    return f"{value:.{digits}e} ± {err:.1e}"
-
-
-def _table(trace, psd, channels, units: str) -> str:
-    u2 = f"{units}**2"
-    shape = " x ".join(str(s) for s in trace.data.shape)
-    lines = [
-        f"{trace.source}: {shape} samples at {trace.sample_rate:.6g} Hz (units of the record: {units})",
-        f"Welch PSD: {psd.window} window, nperseg={psd.nperseg}, noverlap={psd.noverlap}, "
-        f"{psd.n_segments} segments ({psd.effective_averages:.1f} effective), "
-        f"{psd.resolution_hz:.4g} Hz per bin",
-    ]
-    head = f"  {'peak':>4}  {'f0 [Hz]':>24}  {'gamma [1/s]':>22}  {'area [' + u2 + ']':>24}"
-    for i, fit in enumerate(channels):
-        g = fit.goodness
-        lines.append(
-            f"channel {i}: background {_pm(fit.background, fit.background_stderr)} "
-            f"{u2}/Hz; band {fit.band[0]:.6g}..{fit.band[1]:.6g} Hz; "
-            f"deviance/dof {g.reduced:.3f} (p = {g.p_value:.2g})"
-        )
-        lines.append(head)
-        for j, pk in enumerate(fit.peaks):
-            lines.append(
-                f"  {j:>4}  {_pm(pk.f0, pk.f0_stderr):>24}  "
-                f"{_pm(pk.gamma, pk.gamma_stderr):>22}  "
-                f"{_pm(pk.area, pk.area_stderr):>24}"
-            )
-    return "\n".join(lines)
+    return run(args)
 
 
 # --------------------------------------------------------------------------

@@ -21,8 +21,6 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.fft
 import scipy.ndimage
-import scipy.optimize
-import scipy.signal
 import scipy.special
 from numpy.typing import ArrayLike
 
@@ -536,7 +534,11 @@ def _lag_window(w: np.ndarray) -> np.ndarray:
     key = (w.size, hash(w.tobytes()))
     lag = _LAG_WINDOWS.get(key)
     if lag is None:
-        full = scipy.signal.correlate(w, w, mode="full", method="fft")[w.size - 1 :]
+        # autocorrelation by FFT (zero-padded to 2N: no wrap-around), as
+        # scipy.signal.correlate(w, w, method="fft") without importing scipy.signal
+        n_fft = scipy.fft.next_fast_len(2 * w.size)
+        spec = scipy.fft.rfft(w, n_fft)
+        full = scipy.fft.irfft(spec.real**2 + spec.imag**2, n_fft)[: w.size]
         lag = full / _dot(w, w)
         lag.setflags(write=False)
         if len(_LAG_WINDOWS) > 16:
@@ -597,36 +599,144 @@ def _running_median(x: np.ndarray, width: int) -> np.ndarray:
     return np.interp(np.arange(x.size), centres, med)
 
 
-def _find_peaks(
-    f: np.ndarray, p: np.ndarray, k: float, r: float, floor: float, wanted: int | None
-) -> list[int]:
-    """Indices of peak candidates, most prominent first.
+#: Default false-alarm rate of the automatic line search: the probability that a
+#: spectrum of pure noise yields at least one line.
+FALSE_ALARM = 1e-3
+#: Per-bin tail probability when a number of lines is asked for (one-sided 3 sigma).
+_WANTED_TAIL = 1.35e-3
 
-    A candidate is a local maximum of the smoothed spectrum that stands above
-    both the floor and a wide running median of the spectrum (so a slope or the
-    plateau below a resonance is no peak) by ``threshold`` in natural-log units.
-    Without a requested number the threshold allows for the number of bins
-    searched (``sqrt(2 ln N) + 2`` standard deviations, about 6 for 8000 bins).
+
+def _smoothed_shape(k: float, width: int, rho: np.ndarray | None) -> float:
+    """Gamma shape of the mean of ``width`` neighbouring bins of a flat spectrum.
+
+    Each bin is Gamma(K) with mean S; neighbours ``m`` apart are correlated by
+    ``rho[m] = |c_m|**2`` (the window's, see :func:`bin_correlation_factor`), so the
+    mean has relative variance ``sum_|m|<w (1 - |m|/w) rho_m / (K w)``; the Gamma law with
+    the same mean and variance (moment matching) has the shape returned.
+    """
+    if rho is None:
+        return k * width
+    m = np.arange(1, width)
+    lags = rho[1:width] if rho.size >= width else np.concatenate([rho[1:], np.zeros(width - rho.size)])
+    total = 1.0 + 2.0 * float(np.sum((1.0 - m / width) * lags))
+    return k * width / total
+
+
+def _bin_correlations(window: np.ndarray | None) -> np.ndarray | None:
+    """``rho_m = |c_m|**2`` for ``m = 0..15``, ``c_m`` the normalised DFT of ``w**2``."""
+    if window is None:
+        return None
+    w2 = np.asarray(window, dtype=np.float64) ** 2
+    c = np.fft.rfft(w2)[:16] / np.sum(w2)
+    return np.abs(c) ** 2
+
+
+def _detection_threshold(
+    k: float, width: int, rho, n_bins: int, false_alarm: float | None
+) -> tuple[float, float]:
+    """Ratios a noise maximum exceeds at one bin with probability ``false_alarm /
+    n_bins`` (so at most ``false_alarm`` per spectrum by the union bound; ``None``: the
+    per-bin 3 sigma tail): of the smoothed spectrum to its mean, and of a maximum to
+    the minimum beside it (its prominence).
+
+    The smoothed spectrum of noise is Gamma distributed with the shape ``a`` of
+    :func:`_smoothed_shape` (chi-square statistics of averaged periodograms, Rev. Sci.
+    Instrum. 81, 075103 (2010); IEEE Trans. Audio Electroacoust. 15, 70 (1967)); the
+    ratio of two independent such values is F distributed with (2a, 2a) degrees of
+    freedom.
+    """
+    shape = _smoothed_shape(k, width, rho)
+    tail = _WANTED_TAIL if false_alarm is None else false_alarm / n_bins
+    level = float(scipy.special.gammainccinv(shape, tail)) / shape
+    ratio = float(scipy.special.fdtri(2.0 * shape, 2.0 * shape, 1.0 - tail))
+    return level, ratio
+
+
+def _local_maxima(x: np.ndarray) -> np.ndarray:
+    """Indices ``i`` with ``x[i - 1] < x[i] >= x[i + 1]`` (interior points)."""
+    inner = x[1:-1]
+    return np.flatnonzero((inner > x[:-2]) & (inner >= x[2:])) + 1
+
+
+def _local_level(smooth: np.ndarray, i: int, box: int) -> float:
+    """The level a candidate at ``i`` stands on: the higher of the lowest values within
+    ``4 box + 4`` bins on either side (on the flank of a broad line, its uphill base)."""
+    reach = 4 * box + 4
+    left = smooth[max(0, i - reach) : i]
+    right = smooth[i + 1 : i + 1 + reach]
+    sides = [float(np.min(v)) for v in (left, right) if v.size]
+    return max(sides) if sides else float(smooth[i])
+
+
+def _half_width_bins(smooth: np.ndarray, i: int, level: float, box: int) -> float:
+    """FWHM in bins of the line at ``i`` of ``smooth`` above ``level``, half crossings
+    interpolated, the box of ``box`` bins removed in quadrature."""
+    half = level + 0.5 * (smooth[i] - level)
+    lo = i
+    while lo > 0 and smooth[lo] > half:
+        lo -= 1
+    hi = i
+    while hi < smooth.size - 1 and smooth[hi] > half:
+        hi += 1
+
+    def cross(a: int, b: int) -> float:  # fractional position of the half crossing
+        da, db = smooth[a] - half, smooth[b] - half
+        return a + (b - a) * (da / (da - db)) if da != db else float(a)
+
+    left = cross(lo + 1, lo) if lo < i else float(lo)
+    right = cross(hi - 1, hi) if hi > i else float(hi)
+    measured = right - left
+    return math.sqrt(max(measured**2 - box**2, 0.0))
+
+
+def _find_peaks(
+    f: np.ndarray,
+    p: np.ndarray,
+    k: float,
+    r: float,
+    floor: float,
+    wanted: int | None,
+    *,
+    rho: np.ndarray | None = None,
+    resolution_bins: float = 1.0,
+    false_alarm: float = FALSE_ALARM,
+) -> list[int]:
+    """Indices of line candidates, most prominent first.
+
+    A candidate is a local maximum of the smoothed spectrum that stands above both the
+    floor and a wide running median of the spectrum (so a slope or the plateau below a
+    resonance is no line) by the threshold of :func:`_detection_threshold`: pure noise
+    gives a line with probability at most ``false_alarm`` per spectrum. It counts only
+    if its half-maximum width is larger than ``resolution_bins`` (the window's
+    equivalent noise bandwidth in bins): a single high bin is no line.
     """
     width = _smooth_width(k)
     smooth = scipy.ndimage.uniform_filter1d(p, width, mode="nearest")
-    # Relative noise of the smoothed spectrum, in natural-log units.
-    sigma_ln = math.sqrt(r / (k * width))
-    n_sigma = 3.0 if wanted is not None else math.sqrt(2.0 * math.log(p.size)) + 2.0
-    threshold = n_sigma * sigma_ln
+    t, t_prominence = _detection_threshold(k, width, rho, p.size,
+                                           None if wanted is not None else false_alarm)
+    threshold = math.log(t)
     log_s = np.log(np.maximum(smooth, floor * 1e-12))
     baseline = np.log(_running_median(smooth, max(101, p.size // 4)))
-    idx, _ = scipy.signal.find_peaks(log_s, height=math.log(floor) + threshold)
-    # The same filters as find_peaks(..., prominence=threshold) followed by the
-    # baseline test, in the cheaper order: prominences only of the survivors.
+    idx = _local_maxima(log_s)
+    idx = idx[log_s[idx] >= math.log(floor) + threshold]
     idx = idx[log_s[idx] - baseline[idx] >= threshold]
     if _fit_kernels.AVAILABLE:
         prominence = np.empty(idx.size)
         _fit_kernels.prominences_into(log_s, idx.astype(np.int64), prominence)
     else:
-        prominence = scipy.signal.peak_prominences(log_s, idx)[0]
-    keep = prominence >= threshold
+        from scipy.signal import peak_prominences
+
+        prominence = peak_prominences(log_s, idx)[0]
+    keep = prominence >= math.log(t_prominence)
     idx, prominence = idx[keep], prominence[keep]
+    if resolution_bins > 0:
+        # Width measured on a spectrum smoothed to about 20 % relative noise (so that a
+        # noise dip does not end the half-maximum walk early), the box removed again.
+        box = min(15, max(width, 2 * math.ceil(12.5 * r / k) + 1))
+        wider = scipy.ndimage.uniform_filter1d(p, box, mode="nearest")
+        wide = np.array([_half_width_bins(wider, int(i), _local_level(wider, int(i), box), box)
+                         > resolution_bins for i in idx], dtype=bool)
+        idx, prominence = idx[wide], prominence[wide]
     idx = idx[np.argsort(prominence)[::-1]]
     if wanted is not None:
         idx = idx[:wanted]
@@ -675,6 +785,7 @@ class _Spectrum:
     df: float
     nyquist: float | None = None
     window: np.ndarray | None = None
+    n_samples: int | None = None
 
 
 def _as_spectrum(spectrum) -> _Spectrum:
@@ -693,6 +804,7 @@ def _as_spectrum(spectrum) -> _Spectrum:
             df=float(spectrum.resolution_hz),
             nyquist=spectrum.sample_rate / 2.0,
             window=spectrum.window_values,
+            n_samples=spectrum.n_samples,
         )
     try:
         f, p, k = spectrum
@@ -717,6 +829,153 @@ def _as_spectrum(spectrum) -> _Spectrum:
     return _Spectrum(f=f, p=p, k=k, r=1.0, df=df)
 
 
+def _band_bins(spec: _Spectrum, band) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The mask of the fitted bins in the spectrum's grid, their frequencies (Hz) and PSD."""
+    f_all, p_all, df, nyquist = spec.f, spec.p, spec.df, spec.nyquist
+    if band is None:
+        mask = f_all > 0
+        if nyquist is not None:
+            mask &= (f_all >= 2 * df) & (f_all < nyquist)
+    else:
+        try:
+            fmin, fmax = (float(v) for v in band)
+        except (TypeError, ValueError):
+            raise InputError(f"{band=} must be two frequencies (fmin, fmax) in Hz") from None
+        if not fmin < fmax:
+            raise InputError(f"{band=} must have fmin < fmax (Hz)")
+        mask = (f_all >= fmin) & (f_all <= fmax) & (f_all > 0)
+    f = f_all[mask]
+    p = p_all[mask]
+    if f.size < 10:
+        raise InputError(
+            f"the band {band=} holds {f.size} bins; at least 10 are needed: widen the band "
+            "or use longer segments"
+        )
+    if not np.all(np.isfinite(p)):
+        raise InputError("the PSD has non-finite values in the band; check the record")
+    if not np.all(p > 0):
+        raise InputError("the PSD has bins <= 0 in the band; a fit needs a positive floor (noise)")
+    return mask, f, p
+
+
+def _guesses(
+    f: np.ndarray,
+    p: np.ndarray,
+    k: float,
+    r: float,
+    floor: float,
+    peaks,
+    *,
+    rho: np.ndarray | None = None,
+    resolution_bins: float = 1.0,
+    false_alarm: float = FALSE_ALARM,
+) -> list[tuple[float, float, float]]:
+    """Candidate lines: ``(f0, gamma, area)`` initial values, in order of ``f0``."""
+    width = _smooth_width(k)
+    smooth = scipy.ndimage.uniform_filter1d(p, width, mode="nearest")
+    if peaks is None or isinstance(peaks, (int, np.integer)):
+        wanted = None if peaks is None else int(peaks)
+        if wanted is not None and wanted < 1:
+            raise InputError(f"peaks={wanted} must be >= 1 (number of peaks to fit)")
+        idx = _find_peaks(f, p, k, r, floor, wanted, rho=rho, resolution_bins=resolution_bins,
+                          false_alarm=false_alarm)
+        if not idx or (wanted is not None and len(idx) < wanted):
+            narrow = [i for i in _find_peaks(f, p, k, r, floor, wanted, rho=rho, resolution_bins=0.0,
+                                             false_alarm=false_alarm) if i not in idx]
+            if narrow:
+                where = ", ".join(f"{f[i]:.6g}" for i in sorted(narrow)[:5])
+                raise UnresolvedPeakError(
+                    f"found {len(idx)} peak(s) wider than the resolution ({resolution_bins:.3g} "
+                    f"bins of {f[1] - f[0]:.3g} Hz) and {len(narrow)} narrower one(s) near "
+                    f"{where} Hz; use longer segments (larger nperseg) to resolve them, or give "
+                    "the peak frequencies"
+                )
+            raise UnresolvedPeakError(
+                f"found {len(idx)} peak(s) wider than the resolution and above the floor "
+                f"({floor:.3g} units**2/Hz; false-alarm rate {false_alarm:g} per spectrum) in "
+                f"{f[0]:.6g}..{f[-1]:.6g} Hz, "
+                + (f"asked for {wanted}; " if wanted is not None else "")
+                + "use a longer record (more averages), a narrower band or give the "
+                "peak frequencies"
+            )
+        return [_initial_peak(f, smooth, i, floor, width) for i in sorted(idx)]
+    guesses = []
+    for f0 in peaks:
+        f0 = float(f0)
+        if not f[0] < f0 < f[-1]:
+            raise InputError(
+                f"initial peak frequency {f0=} Hz is outside the fitted band {f[0]:.6g}..{f[-1]:.6g} Hz"
+            )
+        i = int(np.argmin(np.abs(f - f0)))
+        lo, hi = max(0, i - width), min(f.size, i + width + 1)
+        i = lo + int(np.argmax(smooth[lo:hi]))
+        guesses.append(_initial_peak(f, smooth, i, floor, width))
+    if not guesses:
+        raise InputError("peaks is an empty list; give at least one frequency in Hz")
+    guesses.sort()
+    return guesses
+
+
+def _longer_hint(spec: _Spectrum, linewidth_hz: float) -> str:
+    """What resolves a narrow line: longer segments, or a longer record if the
+    segment is already the whole record."""
+    hint = "use longer segments (larger nperseg)"
+    if spec.window is None or spec.nyquist is None or spec.n_samples is None:
+        return hint
+    if spec.window.size < spec.n_samples:
+        return hint
+    from quietwell.analysis._resolution import required_samples
+
+    fs = 2.0 * spec.nyquist
+    # a width the fit collapsed towards zero gives only a lower bound on the length
+    needed = required_samples(max(linewidth_hz, 0.1 * spec.df), fs)
+    return (f"the segment is the whole record: a record of at least {needed} samples "
+            f"({needed / fs:.3g} s) would resolve it")
+
+
+def _search_options(spec: _Spectrum) -> dict:
+    """The window's bin correlations and resolution (equivalent noise bandwidth) in bins."""
+    if spec.window is None:
+        return {"rho": None, "resolution_bins": 1.0}
+    w = np.asarray(spec.window, dtype=np.float64)
+    return {"rho": _bin_correlations(w), "resolution_bins": w.size * _dot(w, w) / float(np.sum(w)) ** 2}
+
+
+def _line_widths(
+    psd: PSDResult, *, peaks=None, band=None, narrow: bool = False,
+    false_alarm: float = FALSE_ALARM,
+) -> list[tuple[float, float]]:
+    """``(f0, fwhm)`` in Hz of the candidate lines of a 1-D PSD, from the same search
+    and initial values as :func:`fit_psd`; empty where no line is found. With
+    ``narrow`` also candidates narrower than the resolution (whose width a finer
+    resolution must then measure)."""
+    spec = _as_spectrum(psd)
+    _, f, p = _band_bins(spec, band)
+    floor = _floor_estimate(p, spec.k)
+    options = _search_options(spec)
+    if narrow:
+        options["resolution_bins"] = 0.0
+    try:
+        guesses = _guesses(f, p, spec.k, spec.r, floor, peaks, **options, false_alarm=false_alarm)
+    except UnresolvedPeakError:
+        return []
+    out = []
+    for f0, gamma, _ in guesses:
+        i = int(np.argmin(np.abs(f - f0)))
+        fwhm_bins = gamma / _TWO_PI / spec.df
+        for _ in range(2):
+            # The peak of a lightly smoothed spectrum sits on an upward noise excursion,
+            # which narrows the half-maximum width: smooth over a third of the width found.
+            box = max(3, 2 * int(fwhm_bins / 6.0) + 1)
+            smooth = scipy.ndimage.uniform_filter1d(p, box, mode="nearest")
+            lo, hi = max(0, i - box), min(p.size, i + box + 1)
+            j = lo + int(np.argmax(smooth[lo:hi]))
+            _, g, _ = _initial_peak(f, smooth, j, floor, box)
+            fwhm_bins = g / _TWO_PI / spec.df
+        out.append((float(f[j]), fwhm_bins * spec.df))
+    return out
+
+
 def fit_psd(
     spectrum: PSDResult | tuple[ArrayLike, ArrayLike, float],
     *,
@@ -724,6 +983,7 @@ def fit_psd(
     band: tuple[float, float] | None = None,
     min_linewidth_bins: float = 3.0,
     min_significance: float = 3.0,
+    false_alarm: float = FALSE_ALARM,
 ) -> SpectrumFit:
     """Fit damped-oscillator peaks on a flat floor by maximum likelihood.
 
@@ -740,8 +1000,9 @@ def fit_psd(
         frequencies in Hz, PSD in ``units**2/Hz`` and the number K of
         independent averages per bin (bins taken as independent).
     peaks : int or sequence of float, optional
-        ``None``: every peak found well above the floor and the local level
-        (about 6 sigma, allowing for the number of bins searched);
+        ``None``: every line found above the floor and the local level with a
+        false-alarm rate of ``false_alarm`` per spectrum, and wider than the
+        window's resolution;
         an int ``n``: the ``n`` most prominent peaks (3 sigma threshold);
         a sequence: initial resonance frequencies in Hz, one per peak.
     band : (float, float), optional
@@ -752,6 +1013,10 @@ def fit_psd(
         Smallest allowed ``gamma/(2 pi)`` in bins.
     min_significance : float, optional
         Smallest allowed ``area / area_stderr``.
+    false_alarm : float, optional
+        Probability that the automatic search (``peaks=None``) takes pure noise for
+        a line, per spectrum: the threshold is the Gamma quantile of the smoothed
+        Welch estimate with its number of averages, at ``false_alarm / bins``.
 
     Returns
     -------
@@ -790,64 +1055,11 @@ def fit_psd(
     True
     """
     spec = _as_spectrum(spectrum)
-    f_all, p_all, k, r, df, nyquist = spec.f, spec.p, spec.k, spec.r, spec.df, spec.nyquist
-    if band is None:
-        mask = f_all > 0
-        if nyquist is not None:
-            mask &= (f_all >= 2 * df) & (f_all < nyquist)
-    else:
-        try:
-            fmin, fmax = (float(v) for v in band)
-        except (TypeError, ValueError):
-            raise InputError(f"{band=} must be two frequencies (fmin, fmax) in Hz") from None
-        if not fmin < fmax:
-            raise InputError(f"{band=} must have fmin < fmax (Hz)")
-        mask = (f_all >= fmin) & (f_all <= fmax) & (f_all > 0)
-    f = f_all[mask]
-    p = p_all[mask]
-    if f.size < 10:
-        raise InputError(
-            f"the band {band=} holds {f.size} bins; at least 10 are needed: widen the band "
-            "or use longer segments"
-        )
-    if not np.all(np.isfinite(p)):
-        raise InputError("the PSD has non-finite values in the band; check the record")
-    if not np.all(p > 0):
-        raise InputError("the PSD has bins <= 0 in the band; a fit needs a positive floor (noise)")
-
+    k, r, df, nyquist = spec.k, spec.r, spec.df, spec.nyquist
+    mask, f, p = _band_bins(spec, band)
     _compile_kernels()
     floor = _floor_estimate(p, k)
-    width = _smooth_width(k)
-    smooth = scipy.ndimage.uniform_filter1d(p, width, mode="nearest")
-    if peaks is None or isinstance(peaks, (int, np.integer)):
-        wanted = None if peaks is None else int(peaks)
-        if wanted is not None and wanted < 1:
-            raise InputError(f"peaks={wanted} must be >= 1 (number of peaks to fit)")
-        idx = _find_peaks(f, p, k, r, floor, wanted)
-        if not idx or (wanted is not None and len(idx) < wanted):
-            raise UnresolvedPeakError(
-                f"found {len(idx)} peak(s) above the floor ({floor:.3g} units**2/Hz) in "
-                f"{f[0]:.6g}..{f[-1]:.6g} Hz, "
-                + (f"asked for {wanted}; " if wanted is not None else "")
-                + "use a longer record (more averages), a narrower band or give the "
-                "peak frequencies"
-            )
-        guesses = [_initial_peak(f, smooth, i, floor, width) for i in sorted(idx)]
-    else:
-        guesses = []
-        for f0 in peaks:
-            f0 = float(f0)
-            if not f[0] < f0 < f[-1]:
-                raise InputError(
-                    f"initial peak frequency {f0=} Hz is outside the fitted band {f[0]:.6g}..{f[-1]:.6g} Hz"
-                )
-            i = int(np.argmin(np.abs(f - f0)))
-            lo, hi = max(0, i - width), min(f.size, i + width + 1)
-            i = lo + int(np.argmax(smooth[lo:hi]))
-            guesses.append(_initial_peak(f, smooth, i, floor, width))
-        if not guesses:
-            raise InputError("peaks is an empty list; give at least one frequency in Hz")
-        guesses.sort()
+    guesses = _guesses(f, p, k, r, floor, peaks, **_search_options(spec), false_alarm=false_alarm)
 
     n_peaks = len(guesses)
     prob = _Problem(
@@ -916,7 +1128,7 @@ def fit_psd(
             raise UnresolvedPeakError(
                 f"peak near f0={f0[j]:.6g} Hz has linewidth gamma/2pi={gamma[j] / _TWO_PI:.3g} "
                 f"Hz, below {min_linewidth_bins:g} bins ({min_linewidth_bins * df:.3g} Hz at "
-                f"{df:.3g} Hz per bin); use longer segments (larger nperseg)"
+                f"{df:.3g} Hz per bin); " + _longer_hint(spec, gamma[j] / _TWO_PI)
             )
     # Converged when the Newton step would lower the negative log-likelihood by
     # far less than one unit, whatever the optimiser's own verdict.

@@ -15,7 +15,7 @@ import numpy as np
 
 from quietwell._errors import InputError
 
-__all__ = ["Trace", "load_trace", "HDF5_SUFFIXES"]
+__all__ = ["Trace", "load_trace", "load_records", "HDF5_SUFFIXES"]
 
 #: File name endings read as HDF5 (any other file that h5py recognises is too).
 HDF5_SUFFIXES = (".h5", ".hdf5", ".hdf", ".he5", ".nxs")
@@ -171,3 +171,68 @@ def load_trace(path: str | Path, *, dataset: str | None = None, sample_rate: flo
             "give it with --sample-rate HZ"
         )
     return Trace(data=data, sample_rate=rate, source=where)
+
+
+def _is_quietwell_raw(fh: h5py.File) -> bool:
+    return isinstance(fh.get("traces"), h5py.Group) and isinstance(
+        fh.get("records/sample_rate"), h5py.Dataset
+    )
+
+
+def load_records(
+    path: str | Path, *, dataset: str | None = None, sample_rate: float | None = None
+) -> list[Trace]:
+    """Records of a file: one :class:`Trace` per record of quietwell's own raw HDF5
+    layout, else the one record of :func:`load_trace`.
+
+    quietwell's raw files (written by ``quietwell.devices``) hold ``/traces/<channel>``
+    of shape ``(records, samples)`` (V) and ``/records/sample_rate`` (Hz, one per
+    record): each record of each channel (or of the channel ``dataset``, e.g.
+    ``traces/x``) is one 1-D trace, with its own sample rate.
+    """
+    p = Path(path)
+    if p.exists() and p.is_file() and p.suffix.lower() != ".npy" and h5py.is_hdf5(p):
+        try:
+            with h5py.File(p, "r") as fh:
+                if _is_quietwell_raw(fh):
+                    return _raw_records(fh, p, dataset, sample_rate)
+        except InputError:
+            raise
+        except (OSError, ValueError, TypeError, KeyError) as exc:
+            raise InputError(f"{p}: cannot be read as HDF5 ({exc}); give a valid HDF5 or .npy file") from None
+    return [load_trace(p, dataset=dataset, sample_rate=sample_rate)]
+
+
+def _raw_records(fh: h5py.File, p: Path, dataset: str | None, sample_rate: float | None) -> list[Trace]:
+    names = sorted(k for k, v in fh["traces"].items() if isinstance(v, h5py.Dataset))
+    if dataset is not None:
+        name = dataset.strip("/").removeprefix("traces/")
+        if name not in names:
+            raise InputError(
+                f"{p}: no trace {dataset!r} in this quietwell raw file (traces: "
+                f"{', '.join(names) or 'none'}); give one with --dataset traces/NAME"
+            )
+        names = [name]
+    rates = np.asarray(fh["records/sample_rate"][()], dtype=np.float64)
+    out = []
+    for name in names:
+        ds = fh["traces"][name]
+        where = f"{p}:traces/{name}"
+        if ds.ndim != 2:
+            raise InputError(
+                f"{where}: shape {ds.shape} is not (records, samples); the file is not a "
+                "quietwell raw file"
+            )
+        _check_layout(ds.shape[1:], ds.dtype, where)
+        for i in range(ds.shape[0]):
+            src = f"{where}[record {i}]"
+            if sample_rate is not None:
+                rate = _check_rate(sample_rate, src)
+            elif i < rates.size:
+                rate = _check_rate(rates[i], f"{p}:records/sample_rate[{i}]")
+            else:
+                raise InputError(
+                    f"{src}: no records/sample_rate entry for this record; give --sample-rate HZ"
+                )
+            out.append(Trace(data=ds[i], sample_rate=rate, source=src))
+    return out

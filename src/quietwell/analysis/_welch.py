@@ -25,7 +25,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.fft
-import scipy.signal
 from numpy.lib.stride_tricks import as_strided
 from numpy.typing import ArrayLike
 
@@ -113,6 +112,11 @@ class PSDResult:
     window_values: np.ndarray = field(repr=False)
 
     @property
+    def n_samples(self) -> int:
+        """Samples of the record used by the segments (per channel)."""
+        return (self.n_segments - 1) * (self.nperseg - self.noverlap) + self.nperseg
+
+    @property
     def n_channels(self) -> int:
         """Number of channels (1 for a 1-D record)."""
         return 1 if self.psd.ndim == 1 else self.psd.shape[0]
@@ -191,7 +195,17 @@ def bin_correlation_factor(window: np.ndarray) -> float:
 
 
 def _window_array(window: str | tuple | ArrayLike, nperseg: int) -> tuple[np.ndarray, str]:
+    if isinstance(window, str) and window in ("hann", "hanning"):
+        # scipy.signal.get_window("hann", N) (periodic), the same operations, without
+        # importing scipy.signal (and scipy.stats with it) on the analysis path
+        fac = np.linspace(-np.pi, np.pi, nperseg + 1)[:-1]
+        w = np.zeros(nperseg)
+        for k, a in enumerate((0.5, 0.5)):
+            w += a * np.cos(k * fac)
+        return w, window
     if isinstance(window, (str, tuple)):
+        import scipy.signal
+
         try:
             w = scipy.signal.get_window(window, nperseg, fftbins=True)
         except (ValueError, TypeError) as exc:

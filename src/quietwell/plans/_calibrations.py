@@ -19,6 +19,7 @@ import numpy as np
 
 from .._errors import InputError, LimitError
 from ..analysis._derived import fit_integer_charge
+from ..analysis._resolution import segment_length
 from ..live import CombinedAnalyzer, DriveAnalyzer, LiveFitter, ModeAnalyzer
 from ..physics import AXES, E_CHARGE, Estimate, mass_from_drive, thermal_calibration
 from ..setup import Setup
@@ -158,7 +159,7 @@ def thermal_calibration_plan(
     motion = detectors[0]
     fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
                                          input_range)
-    fitter = LiveFitter(ModeAnalyzer(app.setup.trap.frequencies, nperseg=max(1024, n // 8)))
+    fitter = LiveFitter(ModeAnalyzer(app.setup.trap.frequencies, nperseg=segment_length(n)))
     md_ = run_metadata(app, "thermal_calibration",
                        {"pressure": p, "records": records, "mass": m.value,
                         "mass_source": source}, md)
@@ -242,7 +243,7 @@ def charge_calibration(
     motion = detectors[0]
     fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
                                          input_range)
-    analyzer = CombinedAnalyzer([ModeAnalyzer(f_modes, nperseg=max(1024, n // 8)),
+    analyzer = CombinedAnalyzer([ModeAnalyzer(f_modes, nperseg=segment_length(n)),
                                  DriveAnalyzer(drive_frequency, axis="x")])
     fitter = LiveFitter(analyzer)
     md_ = run_metadata(app, "charge_calibration",

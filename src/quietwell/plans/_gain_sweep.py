@@ -16,6 +16,7 @@ import numpy as np
 
 from .._errors import InputError
 from ..analysis._derived import fit_cold_damping
+from ..analysis._resolution import segment_length
 from ..live import LiveFitter, ModeAnalyzer
 from ..physics import (
     AXES,
@@ -169,7 +170,7 @@ def gain_sweep(
     motion = detectors[0]
     fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
                                          input_range)
-    analyzer = ModeAnalyzer(app.setup.trap.frequencies, nperseg=max(1024, n // 8),
+    analyzer = ModeAnalyzer(app.setup.trap.frequencies, nperseg=segment_length(n),
                             calibration=[c.value for c in cal],
                             calibration_stderr=[c.stderr for c in cal], mass=m.value)
     fitter = LiveFitter(analyzer)

@@ -18,6 +18,7 @@ import numpy as np
 
 from .._errors import InputError
 from ..analysis._derived import fit_line
+from ..analysis._resolution import segment_length
 from ..live import LiveFitter, ModeAnalyzer
 from ..physics import (
     AXES,
@@ -111,7 +112,7 @@ def pressure_sweep(
     motion = detectors[0]
     fs, n = yield from configure_detector(app, motion, sample_rate, record_length,
                                          input_range)
-    fitter = LiveFitter(ModeAnalyzer(setup.trap.frequencies, nperseg=max(1024, n // 8)))
+    fitter = LiveFitter(ModeAnalyzer(setup.trap.frequencies, nperseg=segment_length(n)))
     md_ = run_metadata(app, "pressure_sweep", plan_args, md,
                        dimensions=[(["pressure"], "primary")])
     values = DerivedValues("summary")

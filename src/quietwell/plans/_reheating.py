@@ -19,6 +19,7 @@ import numpy as np
 
 from .._errors import InputError, LimitError
 from ..analysis._derived import fit_heating_rate
+from ..analysis._resolution import segment_length
 from ..live import LiveFitter, ModeAnalyzer
 from ..physics import AXES, GASES, Estimate, epstein_damping, gas_heating_rate
 from ..setup import Setup
@@ -143,7 +144,7 @@ def reheating_cycles(
     n = int(round(off_time * fs))
     fs, n = yield from configure_detector(app, motion, None, n)
     window = max(1, int(round(fs / envelope_bandwidth)))
-    analyzer = ModeAnalyzer(app.setup.trap.frequencies, nperseg=max(256, n // 8),
+    analyzer = ModeAnalyzer(app.setup.trap.frequencies, nperseg=segment_length(n, shortest=256),
                             calibration=[c.value for c in cal],
                             calibration_stderr=[c.stderr for c in cal], mass=m.value,
                             envelope_window=window, record_length=n)

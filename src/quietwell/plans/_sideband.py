@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 
 from .._errors import InputError
+from ..analysis._resolution import segment_length
 from ..live import CombinedAnalyzer, LiveFitter, ModeAnalyzer, SidebandAnalyzer
 from ..physics import AXES, Estimate, sideband_occupation
 from ..setup import Setup
@@ -101,10 +102,10 @@ def sideband_thermometry(
     het = app.heterodyne
     fs, n = yield from configure_detector(app, het, None, None, input_range)
     parts = [SidebandAnalyzer(setup.detector.heterodyne_carrier, setup.detector.lo_sign,
-                              setup.trap.frequencies, nperseg=max(1024, n // 8), axis=axis)]
+                              setup.trap.frequencies, nperseg=segment_length(n), axis=axis)]
     if app.detector in detectors:
         _, n_m = yield from configure_detector(app, app.detector, None, None)
-        parts.append(ModeAnalyzer(setup.trap.frequencies, nperseg=max(1024, n_m // 8)))
+        parts.append(ModeAnalyzer(setup.trap.frequencies, nperseg=segment_length(n_m)))
     fitter = LiveFitter(CombinedAnalyzer(parts))
     md_ = run_metadata(app, "sideband_thermometry",
                        {"records": records, "axis": axis, "feedback_gain": gain,

@@ -1,0 +1,109 @@
+"""The one segment-length rule: records the issue named are accepted and fitted; only a
+line narrower than the whole record resolves is refused, with the length that would."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from oscillator_records import oscillator_record
+
+from quietwell import UnresolvedPeakError
+from quietwell.analysis._resolution import (
+    LINE_BINS,
+    MIN_LINE_BINS,
+    MIN_SEGMENTS,
+    choose_segment_length,
+    required_samples,
+    segment_length,
+)
+from quietwell.cli import main
+
+TWO_PI = 2.0 * math.pi
+
+
+def test_first_pass_is_the_live_fits_old_rule():
+    # the live fits used max(1024, n // 8) (and max(256, n // 8) for reheating records)
+    for n in (2**14, 5000, 2**20, 3 * 2**19):
+        assert segment_length(n) == max(1024, n // 8)
+        assert segment_length(n, shortest=256) == max(256, n // 8)
+
+
+def test_rule_branches():
+    fs, n = 2e6, 2**22
+    # unbiased: the shortest power of two with 10 bins per linewidth
+    nper = segment_length(n, fs, [350.0])
+    assert fs / nper <= 350.0 / LINE_BINS < 2 * fs / nper
+    assert n // nper >= MIN_SEGMENTS
+    # a narrower line: 10 bins would leave fewer than 16 segments, 3 bins do not
+    nper = segment_length(n, fs, [30.0])
+    assert nper == n // MIN_SEGMENTS and 30.0 / (fs / nper) >= MIN_LINE_BINS
+    # narrower still: fewer segments, down to the whole record
+    nper = segment_length(n, fs, [2.0])
+    assert 2.0 / (fs / nper) >= MIN_LINE_BINS and nper <= n
+    assert segment_length(n, fs, [3.0 * fs / n]) == n
+    # broad lines: short segments, never below 256 samples
+    assert segment_length(n, fs, [1e6]) == 256
+
+
+def test_only_a_line_the_whole_record_cannot_resolve_is_refused():
+    fs, n = 2e6, 2**22
+    width = 0.5 * MIN_LINE_BINS * fs / n
+    with pytest.raises(UnresolvedPeakError) as err:
+        segment_length(n, fs, [width])
+    needed = required_samples(width, fs)
+    assert needed >= 2 * n - 1
+    assert f"at least {needed} samples" in str(err.value)
+
+
+def issue_record_a(seed=0):
+    """2**22 samples at 2 MHz, one line 350 Hz wide (issue 14)."""
+    rng = np.random.default_rng(seed)
+    return oscillator_record(2**22, 2e6, 150e3, TWO_PI * 350.0, 1e-6, 1e-13, rng, np.float32)
+
+
+def test_first_pass_measures_the_width():
+    choice = choose_segment_length(issue_record_a(), 2e6)
+    ((f0, width),) = choice.lines
+    assert abs(f0 - 150e3) < 100.0
+    assert 0.8 * 350.0 < width < 1.25 * 350.0
+    assert 2e6 / choice.nperseg <= width / LINE_BINS
+
+
+def _fit_json(tmp_path, name, record, fs, capsys):
+    path = tmp_path / name
+    np.save(path, record)
+    code = main(["analyze", str(path), "--sample-rate", str(fs), "--json"])
+    out, err = capsys.readouterr()
+    assert code == 0, err
+    return json.loads(out)
+
+
+def _check_line(chan, f0, gamma, area, floor):
+    # the truth within 5 standard errors; the chosen resolution gives 10 bins per line
+    (pk,) = chan["peaks"]
+    assert abs(pk["f0_hz"] - f0) < 5 * pk["f0_hz_stderr"]
+    assert abs(pk["gamma"] - gamma) < 5 * pk["gamma_stderr"]
+    assert abs(pk["area"] - area) < 5 * pk["area_stderr"]
+    assert abs(pk["background"] - floor) < 5 * pk["background_stderr"]
+    assert gamma / TWO_PI / chan["resolution_hz"] >= 0.8 * LINE_BINS
+
+
+def test_issue_record_a_is_accepted(tmp_path, capsys):
+    doc = _fit_json(tmp_path, "a.npy", issue_record_a(), 2e6, capsys)
+    (chan,) = doc["channels"]
+    _check_line(chan, 150e3, TWO_PI * 350.0, 1e-6, 1e-13)
+
+
+@pytest.mark.slow
+def test_issue_record_b_is_accepted(tmp_path, capsys):
+    """3 x 2**22 samples at 5 MHz, lines 900 Hz wide (issue 14), float32."""
+    truth = [(150e3, 1e-6, 2e-13), (170e3, 5e-7, 1e-13), (60e3, 2e-6, 1e-13)]
+    rng = np.random.default_rng(5)
+    rec = np.array([oscillator_record(2**22, 5e6, f0, TWO_PI * 900.0, a, b, rng, np.float32)
+                    for f0, a, b in truth])
+    doc = _fit_json(tmp_path, "b.npy", rec, 5e6, capsys)
+    for chan, (f0, a, b) in zip(doc["channels"], truth, strict=True):
+        _check_line(chan, f0, TWO_PI * 900.0, a, b)
