@@ -76,8 +76,11 @@ class Journal:
 
 
 def unfinished_runs(directory: str | Path) -> list[Path]:
-    """Journals of runs that never received their stop document."""
-    return sorted(p for p in Path(directory).glob("*.jsonl") if not p.name.endswith(".done.jsonl"))
+    """Journals of runs the catalog has not confirmed: neither ``.done`` (written by the
+    catalog) nor ``.recovered`` (rebuilt from the journal once; rebuilding it again would
+    delete what was added to the run since, such as ``superseded_by``)."""
+    return sorted(p for p in Path(directory).glob("*.jsonl")
+                  if not p.name.endswith((".done.jsonl", ".recovered.jsonl")))
 
 
 def replay_journal(path: str | Path, client: Any, writer_factory) -> str:
