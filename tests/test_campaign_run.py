@@ -23,6 +23,7 @@ import pytest
 
 import quietwell
 from quietwell.campaign import campaign_dirs, read_ledger
+from quietwell.store import close_catalog
 
 pytestmark = pytest.mark.slow
 
@@ -160,6 +161,7 @@ def _check_store(data: Path) -> dict[int, list]:
         assert list(np.asarray(fits["record_seq_num"])) == list(range(1, n + 1))
         assert len(good["primary"].read()["time"]) == n
         assert len(good["summary"].read()["time"]) == 1 == emitted[uid]["summary"]
+    close_catalog(data)
     return runs
 
 
@@ -219,6 +221,7 @@ def test_a_signal_ends_the_run_cleanly_and_resume_finishes(tmp_path, sig, code, 
              if client[u].metadata["start"].get("campaign_step") == 2]
     assert [r.metadata["stop"]["exit_status"] for r in ended] == ["abort"]
     assert ended[0].metadata["stop"]["reason"] == words
+    close_catalog(data)  # one catalog process per data directory: free it for the resume
     cmd = _Cmd(["run", "--resume", "--data-dir", str(data)])
     got, out, err = cmd.wait()
     assert got == 0, err

@@ -1,5 +1,5 @@
 """Storage: the embedded tiled store and access to catalogs."""
 
-from ._embedded import EmbeddedStore, open_catalog
+from ._embedded import EmbeddedStore, close_catalog, open_catalog
 
-__all__ = ["EmbeddedStore", "open_catalog"]
+__all__ = ["EmbeddedStore", "close_catalog", "open_catalog"]

@@ -48,7 +48,7 @@ from typing import Any
 from .._errors import InputError, QuietwellError
 from ._journal import Journal, _jsonable
 
-__all__ = ["EmbeddedStore", "open_catalog"]
+__all__ = ["EmbeddedStore", "open_catalog", "close_catalog"]
 
 
 class EmbeddedStore:
@@ -349,3 +349,14 @@ def open_catalog(dir_or_uri: str | Path) -> Any:
     if store is None:
         store = _OPEN[path] = EmbeddedStore(path).open()
     return store.client
+
+
+def close_catalog(data_dir: str | Path) -> None:
+    """Stop the embedded server that :func:`open_catalog` started on ``data_dir``.
+
+    The data directory is then free for another process (one catalog process per data
+    directory: a campaign run or resumed elsewhere waits for it).
+    """
+    store = _OPEN.pop(Path(data_dir).expanduser().resolve(), None)
+    if store is not None:
+        store.close()
