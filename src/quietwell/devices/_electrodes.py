@@ -128,7 +128,11 @@ class ElectrodeBackend(Protocol):
 class DampingAxis(AdoptOnConnect):
     """Cold-damping loop of one axis: ``gain`` (1/s), ``delay`` (s), ``enabled``.
 
-    Made by :class:`FeedbackElectrodes`, which adopts its state on connect.
+    Its output: ``feedback_voltage`` (V, the largest magnitude since the previous
+    report) and ``feedback_saturation`` (1, the fraction of that interval at the
+    voltage limit), refreshed by the parent's ``read()`` or ``refresh_feedback()``
+    (reading this axis alone shows the last report). Made by
+    :class:`FeedbackElectrodes`, which adopts its state on connect.
     """
 
     def __init__(
