@@ -32,6 +32,7 @@ from quietwell.devices import (
     ChargeControl,
     ElectrodeState,
     FeedbackElectrodes,
+    FeedbackReport,
     GaugeStatus,
     HeterodyneDetector,
     HeterodyneRecord,
@@ -87,6 +88,16 @@ class MockElectrodes(MockLog):
 
     async def set_drive_enabled(self, enabled):
         self.log.append(("set_drive_enabled", enabled))
+
+    report = FeedbackReport(
+        peak_voltage_v={"x": 2.5, "y": 10.0, "z": 0.25},
+        saturation={"x": 0.0, "y": 0.4, "z": 0.0},
+        interval_s=0.5,
+    )
+
+    async def feedback_report(self):
+        self.log.append(("feedback_report",))
+        return self.report
 
 
 class MockLaser(MockLog):
@@ -193,6 +204,10 @@ class MockMotion(MockLog):
         self.t += n_samples / self.rate
         self.records.append(rec)
         return rec
+
+    async def read_intensity(self):
+        self.log.append(("read_intensity",))
+        return 0.75
 
 
 class MockHeterodyne(MockMotion):
@@ -364,9 +379,14 @@ def test_electrodes_in_a_run_have_units_everywhere(RE):
         **{f"el-{a}-gain": "1/s" for a in "xyz"},
         **{f"el-{a}-delay": "s" for a in "xyz"},
         **{f"el-{a}-enabled": "" for a in "xyz"},
+        **{f"el-{a}-feedback_voltage": "V" for a in "xyz"},
+        **{f"el-{a}-feedback_saturation": "1" for a in "xyz"},
         "el-drive_frequency": "Hz",
         "el-drive_amplitude": "V",
         "el-drive_enabled": "",
+        "el-feedback_voltage": "V",
+        "el-feedback_saturation": "1",
+        "el-feedback_interval": "s",
     }
     conf = desc["configuration"]["el"]
     assert conf["data"] == {"el-gain_limit": 2e3, "el-voltage_limit": 10.0, "el-max_delay": 1e-4}
@@ -392,6 +412,39 @@ def test_bps_mv_sets_the_gain_through_the_runengine(RE):
     with refused_in_run(LimitError, "x gain=10000 1/s is outside"):
         RE(bps.mv(dev.x.gain, 1e4))
     assert be.log == [("set_gain", "x", 750.0)]
+
+
+def test_electrodes_read_asks_for_one_feedback_report_and_shows_it(RE):
+    dev, be = make_electrodes(RE)
+    be.log.clear()
+    reading = run(dev.read())
+    assert be.log == [("feedback_report",)]  # one call per read, nothing sent
+    assert reading["el-x-feedback_voltage"]["value"] == 2.5
+    assert reading["el-y-feedback_saturation"]["value"] == 0.4
+    # totals: the largest over the axes
+    assert reading["el-feedback_voltage"]["value"] == 10.0
+    assert reading["el-feedback_saturation"]["value"] == 0.4
+    assert reading["el-feedback_interval"]["value"] == 0.5
+
+
+@pytest.mark.parametrize(
+    "report, msg",
+    [
+        (dict(saturation={"x": 1.5, "y": 0.0, "z": 0.0}), "saturation=1.5"),
+        (dict(peak_voltage_v={"x": -1.0, "y": 0.0, "z": 0.0}), "peak_voltage_v=-1.0"),
+        (dict(interval_s=-1.0), "interval_s=-1.0"),
+    ],
+)
+def test_electrodes_refuse_a_feedback_report_that_breaks_the_protocol(RE, report, msg):
+    dev, be = make_electrodes(RE)
+    good = dict(
+        peak_voltage_v={"x": 0.0, "y": 0.0, "z": 0.0},
+        saturation={"x": 0.0, "y": 0.0, "z": 0.0},
+        interval_s=1.0,
+    )
+    be.report = FeedbackReport(**{**good, **report})
+    with pytest.raises(BackendDataError, match=msg):
+        run(dev.refresh_feedback())
 
 
 # ----------------------------------------------------------------------------- laser
@@ -742,6 +795,25 @@ def test_motion_settings_traffic_and_stage_push(RE, tmp_path):
     be.log.clear()
     RE(bp.count([det], num=1))
     assert be.log == [("configure", 5e5, 5.0), ("record", 64)]
+
+
+def test_motion_intensity_asks_the_backend_on_every_read_and_stays_out_of_records(RE, tmp_path):
+    be = MockMotion()
+    det = make_motion(tmp_path, be)
+    be.log.clear()
+    seen = []
+
+    def poll():
+        seen.append((yield from bps.rd(det.intensity)))
+
+    RE(poll())
+    assert seen == [0.75] and get(det.intensity) == 0.75
+    assert be.log.count(("read_intensity",)) >= 1 and ("record", 256) not in be.log
+    (dk,) = run(det.intensity.describe()).values()
+    assert dk["units"] == "V"
+    be.log.clear()
+    RE(bp.count([det], num=1))
+    assert ("read_intensity",) not in be.log  # a record does not poll it
 
 
 def test_record_length_is_fixed_while_staged(RE, tmp_path):

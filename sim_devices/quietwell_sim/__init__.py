@@ -37,7 +37,7 @@ from ._exact import (
     transition_matrix,
 )
 from ._from_setup import lab_params_from_setup
-from ._lab import LabParams, Record, SimLab
+from ._lab import FAULT_KINDS, FaultEvent, LabParams, Record, SimLab
 from ._particle import (
     AxisRates,
     GroundTruth,
@@ -77,6 +77,8 @@ __all__ = [
     "Detector",
     "DetectorParams",
     "ExactStep",
+    "FAULT_KINDS",
+    "FaultEvent",
     "Gauge",
     "GaugeKind",
     "GaugeParams",

@@ -19,6 +19,11 @@ calibration):
   assumes the electronics' calibration already compensates the ``cos(Omega0 tau)``
   loss of damping a delay ``tau`` causes, and it does not model the small
   frequency shift ``gamma_fb sin(Omega0 tau)/2``.
+* **Feedback output** (:class:`SimElectrodes`): the voltage the cold-damping force
+  needs, ``V = m gamma_fb v d/(q e kappa)``, clipped at the setup's
+  ``limits.electrode_voltage_max``; the clipped force damps less (see
+  :mod:`quietwell_sim._particle`). ``feedback_report`` gives the largest magnitude
+  since the previous report and the fraction of that sim time at the limit.
 * **Drive tone**: one electrode pair along x, field amplitude ``E0 = kappa V0/d``
   (``kappa`` and ``d`` from the setup's ``[electrodes]``); the tone acts on the
   particle through its charge only.
@@ -49,6 +54,7 @@ from quietwell import InputError, LimitError
 from quietwell import physics as ph
 from quietwell.devices import (
     ElectrodeState,
+    FeedbackReport,
     GaugeStatus,
     HeterodyneRecord,
     LaserState,
@@ -138,6 +144,10 @@ class SimMotion:
             start_time_s=float(rec.start_time),
         )
 
+    async def read_intensity(self) -> float:
+        """The intensity level now in V (:meth:`SimLab.intensity_now`); no sim time passes."""
+        return self._lab.intensity_now()
+
 
 class SimHeterodyne:
     """``HeterodyneBackend``: the lab's sideband detector (beat) plus the intensity monitor.
@@ -186,6 +196,10 @@ class SimHeterodyne:
             start_time_s=float(rec.start_time),
         )
 
+    async def read_intensity(self) -> float:
+        """The intensity level now in V (:meth:`SimLab.intensity_now`); no sim time passes."""
+        return self._lab.intensity_now()
+
 
 class SimElectrodes:
     """``ElectrodeBackend``: cold damping per axis and the drive tone (see module docs).
@@ -201,6 +215,8 @@ class SimElectrodes:
         Loop delay the electronics hold initially, s (stored, not simulated).
     drive_frequency_hz : float
         Initial drive-tone frequency in Hz (the tone starts off).
+    voltage_limit_v : float or None
+        Where the feedback output clips, V (> 0; ``None``: never).
     """
 
     def __init__(
@@ -210,10 +226,12 @@ class SimElectrodes:
         geometry_factor: float,
         loop_delay_s: float = 0.0,
         drive_frequency_hz: float = 1e3,
+        voltage_limit_v: float | None = None,
     ) -> None:
         if not (math.isfinite(distance_m) and distance_m > 0):
             raise InputError(f"electrode {distance_m=} m must be finite and > 0")
         self._lab = lab
+        lab.set_electrodes(distance_m, geometry_factor, voltage_limit_v)
         self.distance_m = float(distance_m)
         self.geometry_factor = float(geometry_factor)
         self._gain = dict.fromkeys(ph.AXES, 0.0)
@@ -287,6 +305,16 @@ class SimElectrodes:
         """Drive tone on or off."""
         self._drive_on = bool(enabled)
         self._apply_drive()
+
+    async def feedback_report(self) -> FeedbackReport:
+        """Peak |V| (V) and fraction at the limit (0..1) per axis since the previous
+        report, and its length in s of sim time (see module docs)."""
+        peak, sat, interval = self._lab.feedback_report()
+        return FeedbackReport(
+            peak_voltage_v={a: float(peak[i]) for i, a in enumerate(ph.AXES)},
+            saturation={a: float(min(max(sat[i], 0.0), 1.0)) for i, a in enumerate(ph.AXES)},
+            interval_s=float(interval),
+        )
 
 
 class SimCharge:

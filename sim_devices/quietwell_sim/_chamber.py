@@ -15,6 +15,13 @@ chamber goes from 10 mbar to 1e-8 mbar in about 3.5 hours and approaches the bas
 pressure 2e-9 mbar over days. Between controller updates the coefficients are
 constant and the solution is the exact exponential.
 
+Pressure burst (a fault on demand: a leak, a valve opened by mistake): while
+bursts are active the true pressure is the pumped pressure above times the product
+of their factors (:meth:`Chamber.add_burst`, :meth:`Chamber.remove_burst`). It
+steps up at once and back at once: the pump-out time ``V/S`` (about a second) is
+short against a burst of minutes. The controller does not fight it (it sets the
+valves for the setpoint's equilibrium), but it no longer reports *settled*.
+
 Pressure controller: with a setpoint the valves are chosen so that the equilibrium
 pressure equals the setpoint (full pumping, bleed trimmed; the pump valve throttled
 when even the full bleed is not enough). It reports *settled* once the pressure
@@ -152,7 +159,9 @@ class Chamber:
 
     def __init__(self, params: ChamberParams, time: float = 0.0) -> None:
         self.params = params
-        self.pressure = float(params.initial_pressure)
+        self._pumped = float(params.initial_pressure)
+        self._bursts: list[float] = []
+        self.burst_factor = 1.0
         self.time = float(time)
         self.age = 0.0
         self.pump_valve = 1.0
@@ -164,6 +173,29 @@ class Chamber:
     def gas(self) -> str:
         """Background gas name."""
         return self.params.gas
+
+    @property
+    def pressure(self) -> float:
+        """True chamber pressure in Pa (the pumped pressure times any burst factor)."""
+        return self._pumped * self.burst_factor
+
+    @pressure.setter
+    def pressure(self, value: float) -> None:
+        self._pumped = float(value) / self.burst_factor
+
+    def add_burst(self, factor: float) -> None:
+        """Start a pressure burst: the true pressure is multiplied by ``factor`` (> 0)."""
+        if not (math.isfinite(factor) and factor > 0):
+            raise InputError(f"burst {factor=} must be finite and > 0 (1 changes nothing)")
+        self._bursts.append(float(factor))
+        self.burst_factor = math.prod(self._bursts)
+        self._in_band_since = None
+
+    def remove_burst(self, factor: float) -> None:
+        """End one burst of ``factor`` started by :meth:`add_burst`."""
+        self._bursts.remove(float(factor))
+        self.burst_factor = math.prod(self._bursts)
+        self._in_band_since = None
 
     def desorption(self) -> float:
         """Current desorption throughput in Pa m**3/s."""
@@ -244,10 +276,10 @@ class Chamber:
         inflow = (p.bleed_throughput * self.bleed_valve + self.desorption()) / p.volume
         if k > 0:
             p_eq = p.base_pressure + inflow / k
-            self.pressure = p_eq + (self.pressure - p_eq) * math.exp(-k * h)
+            self._pumped = p_eq + (self._pumped - p_eq) * math.exp(-k * h)
         else:
-            self.pressure += inflow * h
-        self.pressure = max(self.pressure, p.base_pressure * 1e-3)
+            self._pumped += inflow * h
+        self._pumped = max(self._pumped, p.base_pressure * 1e-3)
         self.age = 0.0 if self.pressure > p.resaturation_pressure else self.age + h
         self.time += h
         if self._in_band():
@@ -391,6 +423,7 @@ class Gauge:
         self.dropout_probability = 0.0
         self._stuck: float | None = None
         self._last: GaugeReading | None = None
+        self._windows: list[tuple[float, float, GaugeStatus]] = []
 
     def gas_factor(self) -> float:
         """Indicated/true pressure for the chamber's gas (1 for N2)."""
@@ -414,10 +447,44 @@ class Gauge:
             value = self._last.value if self._last is not None else self._indicated()
         self._stuck = float(value)
 
+    #: Drop-out modes of :meth:`drop_out`: the status the gauge controller reports.
+    DROPOUT_MODES = ("fault", "sensor_off", "over_range")
+
+    def drop_out(self, start: float, end: float, mode: str = "fault") -> None:
+        """Fail every read with the chamber time in ``[start, end)`` (s, sim time).
+
+        ``mode``: ``"fault"`` reads nan with FAULT (a broken cable, a dead
+        controller), ``"sensor_off"`` nan with SENSOR_OFF (a tripped filament),
+        ``"over_range"`` a nonsense value ten times the range maximum that the
+        controller still calls OK (a gauge reading garbage; the device layer
+        refuses it as over range). Windows may overlap; none is random.
+        """
+        if mode not in self.DROPOUT_MODES:
+            raise InputError(
+                f"gauge drop-out mode={mode!r} is not known; use one of {list(self.DROPOUT_MODES)}"
+            )
+        if not (math.isfinite(start) and math.isfinite(end) and end > start):
+            raise InputError(f"drop-out window [{start!r}, {end!r}) s must be finite, end > start")
+        status = {
+            "fault": GaugeStatus.FAULT,
+            "sensor_off": GaugeStatus.SENSOR_OFF,
+            "over_range": GaugeStatus.OK,
+        }[mode]
+        self._windows = [w for w in self._windows if w[1] > self._chamber.time]
+        self._windows.append((float(start), float(end), status))
+
+    def _dropped(self) -> GaugeStatus | None:
+        t = self._chamber.time
+        for start, end, status in self._windows:
+            if start <= t < end:
+                return status
+        return None
+
     def clear_faults(self) -> None:
-        """Remove drop-outs and a stuck value."""
+        """Remove drop-outs (random and timed) and a stuck value."""
         self.dropout_probability = 0.0
         self._stuck = None
+        self._windows = []
 
     def switch_off(self) -> None:
         """Switch the sensor off: reads return nan with SENSOR_OFF."""
@@ -442,7 +509,12 @@ class Gauge:
         t = self._chamber.time
         pp = self._protect()
         protected = pp is not None and self._chamber.pressure > pp
-        if not self.on or protected:
+        dropped = self._dropped()
+        if dropped is GaugeStatus.OK:  # "over_range" mode: garbage the controller calls OK
+            reading = GaugeReading(10.0 * self.params.range[1], GaugeStatus.OK, t)
+        elif dropped is not None:
+            reading = GaugeReading(math.nan, dropped, t)
+        elif not self.on or protected:
             reading = GaugeReading(math.nan, GaugeStatus.SENSOR_OFF, t)
         elif self.dropout_probability > 0 and self._rng.random() < self.dropout_probability:
             reading = GaugeReading(math.nan, GaugeStatus.FAULT, t)

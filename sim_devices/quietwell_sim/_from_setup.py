@@ -180,7 +180,9 @@ def build_sim_apparatus(
         (radius_m, mass_kg, density_kg_m3, charge_e, frequencies_hz,
         calibration_v_per_m, gas, temperature_k, laser_power_w, wavelength_m,
         waist_m) and ``sim_pressure()`` the true pressure in Pa;
-        ``extras["lab"]`` is the :class:`SimLab`.
+        ``extras["lab"]`` is the :class:`SimLab` (its fault methods inject faults on
+        demand, see :meth:`SimLab.schedule_fault`); the feedback output clips at
+        ``limits.electrode_voltage_max``.
     """
     from ophyd_async.core import StaticPathProvider, UUIDFilenameProvider
 
@@ -239,7 +241,13 @@ def build_sim_apparatus(
             name="het",
             **det_kw,
         )
-    electrodes_be = SimElectrodes(lab, el.distance, el.geometry_factor, loop_delay_s=el.loop_delay)
+    electrodes_be = SimElectrodes(
+        lab,
+        el.distance,
+        el.geometry_factor,
+        loop_delay_s=el.loop_delay,
+        voltage_limit_v=lim.electrode_voltage_max,
+    )
     electrodes = FeedbackElectrodes(
         electrodes_be,
         gain_limit_per_s=lim.feedback_gain_max,

@@ -5,13 +5,26 @@ next record. Random streams are independent children of one
 :class:`numpy.random.SeedSequence` (particle, detector, heterodyne, gauges; each
 gauge its own grandchild), so reading a gauge, or adding one, never changes the
 particle's motion, and a seed makes a run bit-for-bit reproducible.
+
+Faults on demand (for testing what watches an unattended run): :meth:`SimLab.lose_particle`,
+:meth:`SimLab.pressure_burst`, :meth:`SimLab.gauge_dropout`,
+:meth:`SimLab.change_charge` and :meth:`SimLab.saturate_drive` act now;
+:meth:`SimLab.schedule_fault` runs any of them at a later simulated time. Every
+duration runs on the sim clock, none draws a random number (so a fault never shifts
+the random streams), and each start and end is written to :attr:`SimLab.fault_log`.
+:meth:`SimLab.advance` stops at every fault time; a record holds the settings of its
+start, so a fault due inside a record acts when the record ends, except a particle
+loss, which shows from its own sample on.
 """
 
 from __future__ import annotations
 
+import heapq
+import itertools
 import math
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -23,7 +36,50 @@ from ._clock import SimClock
 from ._detector import Detector, DetectorParams, HeterodyneDetector, HeterodyneParams
 from ._particle import GroundTruth, Particle, ParticleParams, TrapParams
 
-__all__ = ["LabParams", "Record", "SimLab"]
+__all__ = ["LabParams", "Record", "SimLab", "FaultEvent", "FAULT_KINDS"]
+
+#: Fault kinds of :meth:`SimLab.schedule_fault`, each with its parameters (SI units).
+FAULT_KINDS: dict[str, tuple[str, ...]] = {
+    "lose_particle": (),
+    "pressure_burst": ("factor", "duration_s"),
+    "gauge_dropout": ("name", "duration_s", "mode"),
+    "change_charge": ("delta_e",),
+    "saturate_drive": ("duration_s", "axes"),
+}
+
+
+@dataclass(frozen=True)
+class FaultEvent:
+    """One entry of :attr:`SimLab.fault_log`.
+
+    Attributes
+    ----------
+    time_s : float
+        Simulated time in s at which it happened (or is due, for ``"scheduled"``).
+    kind : str
+        A key of :data:`FAULT_KINDS`.
+    phase : str
+        ``"scheduled"``, ``"start"`` or ``"end"`` (instant faults log ``"start"`` only).
+    params : dict
+        The fault's parameters in SI units.
+    """
+
+    time_s: float
+    kind: str
+    phase: str
+    params: dict[str, Any]
+
+
+#: Fault parameters with a default (``mode="fault"``, ``axes="xyz"``).
+_OPTIONAL = ("mode", "axes")
+
+
+def _duration(value: Any, what: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise InputError(f"{what} duration_s={value!r} must be a number of seconds > 0")
+    if not (math.isfinite(value) and value > 0):
+        raise InputError(f"{what} duration_s={value!r} s must be finite and > 0")
+    return float(value)
 
 
 def _default_gauges() -> tuple[GaugeParams, ...]:
@@ -122,6 +178,9 @@ class SimLab:
         self.params = params = params or LabParams()
         root = np.random.SeedSequence(int(params.seed))
         s_particle, s_detector, s_het, s_gauges = root.spawn(4)
+        # spawned after the first four, so adding it left their streams unchanged
+        (s_monitor,) = root.spawn(1)
+        self._monitor_rng = np.random.Generator(np.random.SFC64(s_monitor))
         self.clock = SimClock()
         self.chamber = Chamber(params.chamber, time=self.clock.now)
         self.particle = Particle(
@@ -144,6 +203,10 @@ class SimLab:
             g.name: Gauge(g, self.chamber, np.random.Generator(np.random.SFC64(s)))
             for g, s in zip(params.gauges, seeds, strict=True)
         }
+        self.fault_log: list[FaultEvent] = []
+        self._events: list[tuple[float, int, Callable[[float], None]]] = []
+        self._seq = itertools.count()
+        self._held_until = {a: -math.inf for a in "xyz"}
 
     # ---------------------------------------------------------------- time
     @property
@@ -161,15 +224,21 @@ class SimLab:
         if not (math.isfinite(dt) and dt >= 0):
             raise InputError(f"{dt=} s must be finite and >= 0; time only moves forward")
         remaining = float(dt)
+        t_end = self.clock.now + remaining
         tau = self.params.trap.instability_time
+        self._fire_due(t_end - remaining)
         while remaining > 0:
             h = self.chamber.next_step(remaining)
+            if self._events:
+                h = min(h, max(self._events[0][0] - (t_end - remaining), 0.0))
             self.particle.set_pressure(self.chamber.pressure)
             if not self.particle.lost and np.any(self.particle.rates().unstable):
                 h = min(h, 0.25 * tau)
-            self.chamber.step(h)
-            self.particle.propagate(h)
-            remaining -= h
+            if h > 0:
+                self.chamber.step(h)
+                self.particle.propagate(h)
+                remaining -= h
+            self._fire_due(t_end - remaining)
         self.clock.advance(dt)
         self.particle.time = self.chamber.time = self.clock.now
 
@@ -213,6 +282,8 @@ class SimLab:
         fs = det.sample_rate
         dt = 1.0 / fs
         t0 = self.clock.now
+        self._fire_due(t0)
+        loss_at = self._loss_due_before(t0 + n * dt)
         self.particle.set_pressure(self.chamber.pressure)
         truth = self.particle.truth()
         was_lost = self.particle.lost
@@ -221,6 +292,11 @@ class SimLab:
             x = self.particle.sample(n, dt)
         else:
             self.particle.propagate(n * dt)
+        if loss_at is not None and not self.particle.lost:
+            k = min(n, max(0, int(math.ceil((loss_at - t0) * fs))))
+            if motion:
+                x[:, k:] = 0.0
+            self.particle._mark_lost(t0 + k * dt)
         lost_from: int | None = None
         if self.particle.lost:
             lt = self.particle.lost_time if self.particle.lost_time is not None else t0
@@ -244,6 +320,7 @@ class SimLab:
         self.chamber.advance(n * dt)
         self.clock.advance(n * dt)
         self.particle.time = self.chamber.time = self.clock.now
+        self._fire_due(self.clock.now)
         return Record(volts, fs, t0, truth, clipped)
 
     def configure_detector(
@@ -340,3 +417,263 @@ class SimLab:
         """Ground truth now."""
         self.particle.set_pressure(self.chamber.pressure)
         return self.particle.truth()
+
+    # ------------------------------------------------------------- electrodes
+    def set_electrodes(
+        self, distance: float, geometry_factor: float, voltage_max: float | None
+    ) -> None:
+        """Feedback electrodes: gap in m, geometry factor kappa, output limit in V (or None).
+
+        The cold-damping output clips at ``voltage_max``, which weakens the damping
+        (see :mod:`quietwell_sim._particle`).
+        """
+        self.particle.set_electrodes(distance, geometry_factor, voltage_max)
+
+    def feedback_report(self) -> tuple[np.ndarray, np.ndarray, float]:
+        """Feedback output since the previous call: peak |V| per axis (V), fraction of
+        the time at the limit per axis (0..1) and the interval in s of sim time."""
+        return self.particle.drive_report()
+
+    #: Samples averaged by :meth:`intensity_now` (a 1024-sample mean).
+    INTENSITY_SAMPLES = 1024
+
+    def intensity_now(self) -> float:
+        """The total-intensity channel now in V, a mean of :attr:`INTENSITY_SAMPLES`.
+
+        The trapped level (scaled with the laser power) or the lost level, plus the
+        detector's white intensity noise averaged over those samples. It draws from
+        its own random stream (polling it never changes a record) and the clock does
+        not move.
+        """
+        self._fire_due(self.clock.now)
+        det = self.params.detector
+        if self.particle.lost:
+            level = det.lost_intensity_level
+        else:
+            level = det.intensity_level * self.particle.laser_power / self.params.trap.power
+        sd = det.intensity_noise * math.sqrt(det.sample_rate / 2.0 / self.INTENSITY_SAMPLES)
+        v = level + sd * float(self._monitor_rng.standard_normal())
+        return float(min(max(v, -det.adc_range), det.adc_range))
+
+    # ------------------------------------------------------------------ faults
+    def _push(self, t: float, action: Callable[[float], None]) -> None:
+        heapq.heappush(self._events, (float(t), next(self._seq), action))
+
+    def _fire_due(self, t: float) -> None:
+        while self._events and self._events[0][0] <= t:
+            t_ev, _, action = heapq.heappop(self._events)
+            action(t_ev)
+
+    def _loss_due_before(self, t_end: float) -> float | None:
+        losses = [t for t, _, a in self._events if t < t_end and getattr(a, "is_loss", False)]
+        if not losses:
+            return None
+        t_l = min(losses)
+        self._events = [e for e in self._events if not (e[0] == t_l and getattr(e[2], "is_loss", False))]
+        heapq.heapify(self._events)
+        self.fault_log.append(FaultEvent(t_l, "lose_particle", "start", {}))
+        return t_l
+
+    def _log(self, t: float, kind: str, phase: str, **params: Any) -> None:
+        self.fault_log.append(FaultEvent(float(t), kind, phase, dict(params)))
+
+    def _lose(self, t: float) -> None:
+        self._log(t, "lose_particle", "start")
+        if not self.particle.lost:
+            self.particle._mark_lost(t)
+
+    def lose_particle(self) -> None:
+        """Lose the particle now (it leaves the trap for good; the intensity drops)."""
+        self._lose(self.clock.now)
+
+    def _check_burst(self, factor: Any, duration_s: Any) -> tuple[float, float]:
+        if isinstance(factor, bool) or not isinstance(factor, int | float):
+            raise InputError(f"pressure_burst factor={factor!r} must be a number > 0")
+        if not (math.isfinite(factor) and factor > 0):
+            raise InputError(
+                f"pressure_burst factor={factor!r} must be finite and > 0 (e.g. 30 for a leak)"
+            )
+        return float(factor), _duration(duration_s, "pressure_burst")
+
+    def _burst(self, t: float, factor: float, duration_s: float) -> None:
+        self.chamber.add_burst(factor)
+        self._log(t, "pressure_burst", "start", factor=factor, duration_s=duration_s)
+
+        def end(t_end: float) -> None:
+            self.chamber.remove_burst(factor)
+            self._log(t_end, "pressure_burst", "end", factor=factor, duration_s=duration_s)
+
+        self._push(t + duration_s, end)
+
+    def pressure_burst(self, factor: float, duration_s: float) -> None:
+        """Multiply the true chamber pressure by ``factor`` (> 0) for ``duration_s`` (s).
+
+        A leak or a wrong valve: the pressure steps up now and back after
+        ``duration_s`` of sim time; gauges and particle see it (see
+        :mod:`quietwell_sim._chamber`).
+        """
+        f, d = self._check_burst(factor, duration_s)
+        self._burst(self.clock.now, f, d)
+
+    def _check_dropout(self, name: Any, duration_s: Any, mode: Any) -> tuple[str, float, str]:
+        if name not in self.gauges:
+            raise InputError(
+                f"gauge_dropout name={name!r} is not a gauge; the setup has {sorted(self.gauges)}"
+            )
+        if mode not in Gauge.DROPOUT_MODES:
+            raise InputError(
+                f"gauge_dropout mode={mode!r} is not known; use one of {list(Gauge.DROPOUT_MODES)}"
+            )
+        return str(name), _duration(duration_s, "gauge_dropout"), str(mode)
+
+    def _dropout(self, t: float, name: str, duration_s: float, mode: str) -> None:
+        self.gauges[name].drop_out(t, t + duration_s, mode)
+        self._log(t, "gauge_dropout", "start", name=name, duration_s=duration_s, mode=mode)
+
+        def end(t_end: float) -> None:
+            self._log(t_end, "gauge_dropout", "end", name=name, duration_s=duration_s, mode=mode)
+
+        self._push(t + duration_s, end)
+
+    def gauge_dropout(self, name: str, duration_s: float, mode: str = "fault") -> None:
+        """Gauge ``name`` fails every read for ``duration_s`` (s) of sim time from now.
+
+        ``mode``: ``"fault"`` (nan, status FAULT), ``"sensor_off"`` (nan, SENSOR_OFF) or
+        ``"over_range"`` (a nonsense value ten times the range maximum, which the
+        gauge device reports as over range). See :meth:`Gauge.drop_out`.
+        """
+        n, d, m = self._check_dropout(name, duration_s, mode)
+        self._dropout(self.clock.now, n, d, m)
+
+    @staticmethod
+    def _check_delta(delta_e: Any) -> int:
+        if isinstance(delta_e, bool) or not isinstance(delta_e, int | float) or (
+            int(delta_e) != delta_e
+        ):
+            raise InputError(
+                f"change_charge delta_e={delta_e!r} must be a whole number of elementary charges"
+            )
+        return int(delta_e)
+
+    def _charge(self, t: float, delta_e: int) -> None:
+        new = self.particle.discharge(delta_e)
+        self._log(t, "change_charge", "start", delta_e=delta_e, charge_e=new)
+
+    def change_charge(self, delta_e: int) -> int:
+        """Change the particle's charge by ``delta_e`` e now (a stray discharge, a UV
+        flash); returns the new charge in e. The feedback then needs
+        ``q_old/q_new`` times the voltage for the same damping."""
+        d = self._check_delta(delta_e)
+        self._charge(self.clock.now, d)
+        return self.particle.charge
+
+    @staticmethod
+    def _check_axes(axes: Any) -> str:
+        if not isinstance(axes, str) or not axes or set(axes) - set("xyz") or len(
+            set(axes)
+        ) != len(axes):
+            raise InputError(
+                f"saturate_drive axes={axes!r} must be some of 'x', 'y', 'z' as one string, "
+                "e.g. 'xyz' or 'z'"
+            )
+        return "".join(a for a in "xyz" if a in axes)
+
+    def _apply_held(self, t: float) -> None:
+        self.particle.hold_drive([self._held_until[a] > t for a in "xyz"])
+
+    def _saturate(self, t: float, duration_s: float, axes: str) -> None:
+        for a in axes:
+            self._held_until[a] = max(self._held_until[a], t + duration_s)
+        self._apply_held(t)
+        self._log(t, "saturate_drive", "start", duration_s=duration_s, axes=axes)
+
+        def end(t_end: float) -> None:
+            self._apply_held(t_end)
+            self._log(t_end, "saturate_drive", "end", duration_s=duration_s, axes=axes)
+
+        self._push(t + duration_s, end)
+
+    def saturate_drive(self, duration_s: float, axes: str = "xyz") -> None:
+        """Hold the feedback output of ``axes`` at its voltage limit for ``duration_s`` (s).
+
+        The physical cause modelled: an excess input on the feedback electronics
+        drives the amplifier into its rail. The held axes get a constant force and no
+        cold damping (below the loss pressure they become unstable, as without
+        feedback) and report saturation 1 at the limit voltage.
+        """
+        d, a = _duration(duration_s, "saturate_drive"), self._check_axes(axes)
+        self._saturate(self.clock.now, d, a)
+
+    def schedule_fault(self, kind: str, at_s: float | None = None, **params: Any) -> FaultEvent:
+        """Run fault ``kind`` at simulated time ``at_s`` (s; ``None``: now).
+
+        ``kind`` and ``params`` (SI units) are those of the methods of the same name:
+        ``lose_particle()``, ``pressure_burst(factor, duration_s)``,
+        ``gauge_dropout(name, duration_s, mode="fault")``, ``change_charge(delta_e)``,
+        ``saturate_drive(duration_s, axes="xyz")``. Parameters are checked now, so a
+        bad one fails at once with a one-line :class:`~quietwell.InputError`. Returns
+        the ``"scheduled"`` entry written to :attr:`fault_log`.
+        """
+        if kind not in FAULT_KINDS:
+            raise InputError(f"fault kind={kind!r} is not known; use one of {list(FAULT_KINDS)}")
+        allowed = FAULT_KINDS[kind]
+        extra = sorted(set(params) - set(allowed))
+        if extra:
+            raise InputError(
+                f"fault {kind!r} takes {list(allowed) or 'no parameters'}, not {extra}"
+            )
+        now = self.clock.now
+        if at_s is None:
+            t = now
+        elif isinstance(at_s, bool) or not isinstance(at_s, int | float) or not math.isfinite(
+            at_s
+        ):
+            raise InputError(f"fault {kind!r} at_s={at_s!r} must be a sim time in s (or None)")
+        elif at_s < now:
+            raise InputError(
+                f"fault {kind!r} at_s={at_s!r} s is in the past (sim time is {now!r} s); "
+                "give a time >= now"
+            )
+        else:
+            t = float(at_s)
+        missing = [k for k in allowed if k not in params and k not in _OPTIONAL]
+        if missing:
+            raise InputError(f"fault {kind!r} needs {missing} (of {list(allowed)}); add them")
+        action = self._fault_action(kind, params)
+        event = FaultEvent(t, kind, "scheduled", dict(params))
+        self.fault_log.append(event)
+        self._push(t, action)
+        if t == now:
+            self._fire_due(now)
+        return event
+
+    def _fault_action(self, kind: str, params: dict[str, Any]) -> Callable[[float], None]:
+        if kind == "lose_particle":
+            return _Loss(self._lose)
+        if kind == "pressure_burst":
+            f, d = self._check_burst(params["factor"], params["duration_s"])
+            return lambda t: self._burst(t, f, d)
+        if kind == "gauge_dropout":
+            n, d, m = self._check_dropout(
+                params["name"], params["duration_s"], params.get("mode", "fault")
+            )
+            return lambda t: self._dropout(t, n, d, m)
+        if kind == "change_charge":
+            q = self._check_delta(params["delta_e"])
+            return lambda t: self._charge(t, q)
+        d, a = _duration(params["duration_s"], "saturate_drive"), self._check_axes(
+            params.get("axes", "xyz")
+        )
+        return lambda t: self._saturate(t, d, a)
+
+
+class _Loss:
+    """A scheduled particle loss (a record shows it from its own sample on)."""
+
+    is_loss = True
+
+    def __init__(self, action: Callable[[float], None]) -> None:
+        self._action = action
+
+    def __call__(self, t: float) -> None:
+        self._action(t)

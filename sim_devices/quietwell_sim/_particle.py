@@ -28,6 +28,27 @@ Heating and damping per axis (all in the physics core's conventions):
   ``sigma**2 = 2 hbar Omega0 Gamma_total/m`` (m**2/s**3), so that the stationary
   mean energy is ``hbar Omega0 Gamma_total/gamma_total``.
 
+Feedback voltage and saturation. The cold-damping force ``F = m gamma_fb v``
+(velocity ``v``) comes from electrodes at distance ``d`` with geometry factor
+``kappa`` (field ``kappa V/d``) acting on the charge ``q e``, so the electrode
+needs ``V = m gamma_fb v d/(q e kappa)``; its amplifier clips at ``V_max``
+(:meth:`Particle.set_electrodes`; none set: no limit). The clipped force
+``-clip(m gamma_fb v, F_max)`` is replaced by its equivalent linear damping for a
+Gaussian (thermal-state) velocity of variance ``sigma_v**2 = E/m``: with
+``u = v_lim/sigma_v`` and ``v_lim = F_max/(m gamma_fb)`` the power it removes,
+``<F v>``, is ``m gamma_fb sigma_v**2 erf(u/sqrt 2)``, so the damping is
+``gamma_fb erf(u/sqrt 2)`` and the output sits at the limit a fraction
+``erfc(u/sqrt 2)`` of the time (statistical linearisation of a saturation,
+common practice, no source). ``E`` is solved self-consistently with the steady
+state (the transient after a gain step lasts about ``E/(F_max v)``, microseconds
+to milliseconds, much shorter than a record); the feedback's noise heating uses the
+same reduced gain, and a parametric gain does not enter the solution. A charge of
+zero needs an infinite voltage: no damping, saturated all the time. A drive held
+at the rail (:meth:`Particle.hold_drive`: an excess input on the feedback
+electronics) gives a constant force and no damping on that axis: below the loss
+pressure the axis becomes unstable as without feedback. The simulated feedback
+voltage carries no imprecision noise (the loop's bandwidth is not modelled).
+
 Loss (phenomenological model). Below the setup's loss pressure an axis with no
 feedback (no cold damping and no cooling parametric gain) becomes unstable: its
 net damping is replaced by ``-1/instability_time`` (an anti-damping that stands in
@@ -199,6 +220,7 @@ class AxisRates:
     parametric_beta: np.ndarray
     steady_energy: np.ndarray
     unstable: np.ndarray
+    feedback_saturation: np.ndarray
 
     @property
     def sigma2(self) -> np.ndarray:
@@ -229,8 +251,9 @@ class GroundTruth:
     gas : str
         Background gas.
     gas_damping, feedback_damping, instability_damping, total_damping : ndarray
-        Energy damping rates in 1/s (feedback counts only with non-zero charge;
-        instability is the phenomenological loss model, see module docs).
+        Energy damping rates in 1/s (feedback counts only with non-zero charge and
+        is the saturated value when the electrode voltage clips; instability is the
+        phenomenological loss model, see module docs).
     gas_heating, recoil_heating, feedback_heating, total_heating : ndarray
         Heating rates in quanta/s (the bath's 1/2 included in the gas term).
     parametric_gain : ndarray
@@ -246,6 +269,10 @@ class GroundTruth:
         J.
     lost : bool
         True once the particle has left the trap.
+    lost_time : float or None
+        Simulated time of the loss in s.
+    feedback_saturation : ndarray
+        Fraction of the time (0..1) each axis's feedback voltage sits at its limit.
     """
 
     time: float
@@ -272,6 +299,7 @@ class GroundTruth:
     trap_depth: float
     lost: bool
     lost_time: float | None = None
+    feedback_saturation: np.ndarray = field(default_factory=lambda: _frozen(np.zeros(3)))
 
     @property
     def omega0(self) -> np.ndarray:
@@ -335,6 +363,12 @@ class Particle:
         self._steps: dict[tuple[float, float, float, float], ExactStep] = {}
         self.lost = False
         self.lost_time: float | None = None
+        self._electrodes: tuple[float, float, float] | None = None  # (d m, kappa, V_max V)
+        self._held = np.zeros(3, dtype=bool)  # drive held at the rail (fault)
+        self._fb_peak = np.zeros(3)  # V, since the last drive_report
+        self._fb_sat_time = np.zeros(3)  # s at the limit, since the last drive_report
+        self._fb_time = 0.0  # s covered since the last drive_report
+        self._last_report = (np.full(3, np.nan), np.zeros(3), 0.0)
         rates = self.rates()
         e0 = np.where(
             np.isfinite(rates.steady_energy) & (rates.steady_energy > 0),
@@ -390,6 +424,48 @@ class Particle:
             raise LimitError(f"eta={e.tolist()} 1/m**2 must be >= 0; use phase=pi to heat")
         self._set.eta = e
         self._set.phase = _vec3(phase, "phase", "rad")
+
+    def set_electrodes(
+        self, distance: float, geometry_factor: float, voltage_max: float | None
+    ) -> None:
+        """Feedback electrodes: gap ``distance`` in m, ``geometry_factor`` kappa, limit in V.
+
+        The field is ``kappa V/distance``; ``voltage_max`` (> 0) clips the feedback
+        output (``None``: no limit). See module docs.
+        """
+        for name, val in (("distance", distance), ("geometry_factor", geometry_factor)):
+            if not (math.isfinite(val) and val > 0):
+                raise InputError(f"electrode {name}={val!r} must be finite and > 0 (SI units)")
+        if voltage_max is not None and not (math.isfinite(voltage_max) and voltage_max > 0):
+            raise InputError(f"electrode voltage_max={voltage_max!r} V must be finite and > 0")
+        vmax = math.inf if voltage_max is None else float(voltage_max)
+        self._electrodes = (float(distance), float(geometry_factor), vmax)
+
+    def hold_drive(self, axes: ArrayLike) -> None:
+        """Hold the feedback output of the axes where ``axes`` is True at its limit.
+
+        ``axes``: 3 booleans (x, y, z). A held axis feels a constant force and no
+        damping; the output reports the limit and saturation 1 (see module docs).
+        """
+        a = np.asarray(axes, dtype=bool)
+        if a.shape != (3,):
+            raise InputError(f"axes={axes!r} must be 3 booleans (x, y, z)")
+        self._held = a.copy()
+
+    def feedback_volts_per_velocity(self) -> np.ndarray:
+        """Electrode volts per m/s of velocity each axis's cold damping needs (x, y, z).
+
+        ``m gamma_fb d/(|q| e kappa)`` in V s/m with the set gains; nan without
+        electrodes (:meth:`set_electrodes`), inf with zero charge and a gain.
+        """
+        g = self._set.gamma_fb
+        if self._electrodes is None:
+            return np.full(3, np.nan)
+        d, kappa, _ = self._electrodes
+        q = abs(self.charge) * ph.E_CHARGE * kappa
+        if q == 0:
+            return np.where(g > 0, np.inf, 0.0)
+        return self.mass * g * d / q
 
     def set_imprecision(self, s_imp: ArrayLike) -> None:
         """Set the feedback imprecision ``S_imp`` (m**2/Hz, > 0), scalar or (x, y, z)."""
@@ -455,8 +531,8 @@ class Particle:
                 for i, ax in enumerate(ph.AXES)
             ]
         )
-        g_fb = s.gamma_fb if self.charge != 0 else np.zeros(3)
         g_meas = ph.measurement_rate(self.mass, w, s.s_imp)
+        g_fb, sat = self._saturated_feedback(w, g_gas, h_gas + h_rec, g_meas)
         h_fb = g_fb**2 / (16.0 * g_meas)
         eta_eff = s.eta * np.cos(s.phase)
         unstable = (s.pressure < self.trap.loss_pressure) & (g_fb == 0) & (eta_eff <= 0)
@@ -485,7 +561,77 @@ class Particle:
             parametric_beta=_frozen(beta),
             steady_energy=_frozen(e_ss),
             unstable=np.array(unstable),
+            feedback_saturation=_frozen(sat),
         )
+
+    def _saturated_feedback(
+        self, w: np.ndarray, g_gas: np.ndarray, h_other: np.ndarray, g_meas: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Feedback damping (1/s) after the voltage limit, and the saturated fraction."""
+        g_set = np.array(self._set.gamma_fb, dtype=float)
+        held = self._held
+        vmax = math.inf if self._electrodes is None else self._electrodes[2]
+        if self.charge == 0:
+            sat = np.where(held | ((g_set > 0) & math.isfinite(vmax)), 1.0, 0.0)
+            return np.zeros(3), sat
+        g = np.where(held, 0.0, g_set)
+        sat = np.where(held, 1.0, 0.0)
+        if not math.isfinite(vmax):
+            return g, sat
+        assert self._electrodes is not None
+        d, kappa, _ = self._electrodes
+        f_max = abs(self.charge) * ph.E_CHARGE * kappa * vmax / d
+        for i in range(3):
+            if held[i] or g_set[i] <= 0:
+                continue
+            g[i], sat[i] = _clipped_damping(
+                float(g_set[i]),
+                f_max / (self.mass * float(g_set[i])),
+                self.mass,
+                ph.HBAR * float(w[i]),
+                float(g_gas[i]),
+                float(h_other[i]),
+                float(g_meas[i]),
+            )
+        return g, sat
+
+    # ------------------------------------------------------------ drive report
+    def _account_drive(self, r: AxisRates, dt: float, v_amp: np.ndarray | None) -> None:
+        """Add ``dt`` s at rates ``r`` and velocity amplitudes ``v_amp`` (m/s) to the report."""
+        self._fb_time += dt
+        self._fb_sat_time += r.feedback_saturation * dt
+        vmax = math.inf if self._electrodes is None else self._electrodes[2]
+        peak = np.zeros(3)
+        if v_amp is not None and not self.lost:
+            k = self.feedback_volts_per_velocity()
+            with np.errstate(invalid="ignore"):
+                need = np.where(np.isinf(k), np.inf, k * v_amp)
+            peak = np.where(np.isnan(need), np.nan, np.minimum(need, vmax))
+        peak = np.where(self._held, vmax, peak)
+        self._fb_peak = np.where(np.isnan(peak), np.nan, np.fmax(self._fb_peak, peak))
+
+    def drive_report(self) -> tuple[np.ndarray, np.ndarray, float]:
+        """Feedback output since the previous report, then start a new interval.
+
+        Returns
+        -------
+        peak_v : ndarray
+            Largest magnitude of each axis's electrode voltage in V (at most the
+            limit; nan without :meth:`set_electrodes`).
+        saturation : ndarray
+            Fraction of the interval (0..1) each axis sat at the limit.
+        interval_s : float
+            Simulated seconds covered. With no time passed the previous report is
+            returned again (nothing has happened since).
+        """
+        if self._fb_time == 0.0:
+            return self._last_report
+        out = (self._fb_peak.copy(), self._fb_sat_time / self._fb_time, self._fb_time)
+        self._last_report = out
+        self._fb_peak = np.zeros(3)
+        self._fb_sat_time = np.zeros(3)
+        self._fb_time = 0.0
+        return out
 
     def energy(self) -> np.ndarray:
         """Energy of each mode of this realisation in J (drive response included)."""
@@ -524,6 +670,7 @@ class Particle:
             trap_depth=self.trap_depth(),
             lost=self.lost,
             lost_time=self.lost_time,
+            feedback_saturation=r.feedback_saturation,
         )
 
     # ------------------------------------------------------------------- motion
@@ -602,6 +749,7 @@ class Particle:
                     self.state[i] = y + self._particular(xa, wd, self.time + h)
                 if np.any(self.energy() > self.trap_depth()):
                     self._mark_lost(self.time + h)
+            self._account_drive(r, h, np.sqrt(2.0 * self.energy() / self.mass))
             self._relax_mean(r, h)
             self.time += h
             remaining -= h
@@ -662,6 +810,10 @@ class Particle:
                         ph0 = wd * t0 + math.atan2(xa.imag, xa.real)
                         x += abs(xa) * np.cos(ph0 + wd * dt * np.arange(n))
                     self.state[i] = y1 + self._particular(xa, wd, t0 + n * dt)
+            # Velocity amplitude ~ Omega0 times the largest excursion (narrow-band motion).
+            v_amp = np.maximum(
+                r.omega0 * np.abs(out).max(axis=1), np.sqrt(2.0 * self.energy() / self.mass)
+            )
             # Loss: the first sample whose amplitude exceeds the trap depth's.
             x_max = np.sqrt(2.0 * self.trap_depth() / (self.mass * r.omega0**2))
             if any(max(out[i].max(), -out[i].min()) > x_max[i] for i in range(3)):
@@ -671,9 +823,51 @@ class Particle:
                 self._mark_lost(t0 + k * dt)
             elif np.any(self.energy() > self.trap_depth()):
                 self._mark_lost(t0 + n * dt)
+            self._account_drive(r, n * dt, v_amp)
+        else:
+            self._account_drive(r, n * dt, None)
         self._relax_mean(r, n * dt)
         self.time = t0 + n * dt
         return out
+
+
+def _clipped_damping(
+    g_set: float, v_lim: float, mass: float, hw: float, g_gas: float, h_other: float, g_meas: float
+) -> tuple[float, float]:
+    """Damping (1/s) and saturated fraction of one axis's clipped cold damping.
+
+    Solves ``E = hw (h_other + g**2/(16 g_meas))/(g_gas + g)`` with
+    ``g = g_set erf(u/sqrt 2)``, ``u = v_lim sqrt(mass/E)`` for the steady energy ``E``
+    (J) by bisection in ``log E`` (see module docs); ``hw = hbar Omega0`` in J,
+    rates in 1/s and quanta/s, ``v_lim`` in m/s.
+    """
+
+    def gain(e: float) -> float:
+        return g_set * math.erf(v_lim * math.sqrt(mass / e) / math.sqrt(2.0))
+
+    def excess(e: float) -> float:
+        ge = gain(e)
+        return hw * (h_other + ge * ge / (16.0 * g_meas)) / (g_gas + ge) - e
+
+    e_full = hw * (h_other + g_set * g_set / (16.0 * g_meas)) / (g_gas + g_set)
+    u_full = v_lim * math.sqrt(mass / e_full) / math.sqrt(2.0)
+    if u_full > 8.0:  # erf = 1 to double precision: no clipping
+        return g_set, math.erfc(u_full)
+    # excess > 0 below the smallest possible steady energy; < 0 far above every one
+    lo = 0.5 * hw * h_other / (g_gas + g_set)
+    hi = 2.0 * max(e_full, lo)
+    for _ in range(400):
+        if excess(hi) < 0:
+            break
+        hi *= 4.0
+    for _ in range(80):
+        mid = math.sqrt(lo * hi)
+        if excess(mid) > 0:
+            lo = mid
+        else:
+            hi = mid
+    u = v_lim * math.sqrt(mass / math.sqrt(lo * hi)) / math.sqrt(2.0)
+    return g_set * math.erf(u), math.erfc(u)
 
 
 def cmath_exp(phase: float) -> complex:

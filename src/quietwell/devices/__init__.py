@@ -19,7 +19,13 @@ without blocking the RunEngine's event loop; a simulated backend simply returns.
 
 from ._charge import ChargeBackend, ChargeControl
 from ._connect import AdoptOnConnect
-from ._electrodes import DampingAxis, ElectrodeBackend, ElectrodeState, FeedbackElectrodes
+from ._electrodes import (
+    DampingAxis,
+    ElectrodeBackend,
+    ElectrodeState,
+    FeedbackElectrodes,
+    FeedbackReport,
+)
 from ._gauge import GaugeBackend, GaugeStatus, VacuumGauge
 from ._lab_clock import ClockBackend, LabClock, WallClockBackend
 from ._laser import LaserBackend, LaserState, TrapLaser
@@ -43,6 +49,7 @@ __all__ = [
     "DampingAxis",
     "ElectrodeBackend",
     "ElectrodeState",
+    "FeedbackReport",
     "ChargeControl",
     "ChargeBackend",
     "TrapLaser",

@@ -10,22 +10,41 @@ Gain convention: each axis's gain is the **added energy damping rate**
 ``gamma_fb`` in 1/s (the feedback adds ``gamma_fb`` to the FWHM of the
 displacement PSD in rad/s, the convention of :mod:`quietwell.physics`). The
 backend translates it into its own electronics gain using its calibration.
+
+Feedback output: the cold-damping force ``F = m gamma_fb v`` on a particle of charge
+``q e`` between electrodes at distance ``d`` with geometry factor ``kappa`` (field
+``kappa V/d``) needs the voltage ``V = F d/(q e kappa)``; the amplifier stops at the
+setup's ``limits.electrode_voltage_max``, and while it sits there the damping is
+weaker than set. The device reports, per axis and as the largest over the axes,
+``feedback_voltage`` (V, the largest magnitude of the feedback output since the
+previous report) and ``feedback_saturation`` (1, the fraction 0..1 of that interval
+at the limit), with ``feedback_interval`` (s, the interval covered). "Drive" in this
+device names the calibration tone, not the feedback output.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Protocol, runtime_checkable
 
-from ophyd_async.core import StandardReadableFormat
+from bluesky.protocols import Reading
+from ophyd_async.core import StandardReadableFormat, soft_signal_r_and_setter
 
 from .._errors import InputError
 from ..physics import AXES
 from ._checked_signal import checked_signal_rw, const_signal
 from ._checks import check_flag, check_limits_pair, check_real
 from ._connect import AdoptOnConnect
+from ._motion import BackendDataError
 
-__all__ = ["ElectrodeBackend", "ElectrodeState", "DampingAxis", "FeedbackElectrodes"]
+__all__ = [
+    "ElectrodeBackend",
+    "ElectrodeState",
+    "FeedbackReport",
+    "DampingAxis",
+    "FeedbackElectrodes",
+]
 
 
 @dataclass(frozen=True)
@@ -42,6 +61,28 @@ class ElectrodeState:
     drive_frequency_hz: float
     drive_amplitude_v: float
     drive_enabled: bool
+
+
+@dataclass(frozen=True)
+class FeedbackReport:
+    """What the cold-damping outputs did since the previous report.
+
+    Mappings are keyed by axis ``"x"``, ``"y"``, ``"z"``.
+
+    Attributes
+    ----------
+    peak_voltage_v : dict of str to float
+        Largest magnitude of each axis's feedback output in V over the interval (at
+        most the voltage limit; nan if the hardware cannot tell).
+    saturation : dict of str to float
+        Fraction (0..1) of the interval each axis's output sat at its voltage limit.
+    interval_s : float
+        Length of the interval in s on the backend's clock (0 before any time passed).
+    """
+
+    peak_voltage_v: dict[str, float]
+    saturation: dict[str, float]
+    interval_s: float
 
 
 @runtime_checkable
@@ -73,11 +114,25 @@ class ElectrodeBackend(Protocol):
     async def set_drive_enabled(self, enabled: bool) -> None:
         """Switch the calibration drive tone on (True) or off (False)."""
 
+    async def feedback_report(self) -> FeedbackReport:
+        """The feedback outputs since the previous call, then start a new interval.
+
+        Hardware: the peak and the time at the rail of each amplifier output (or of
+        the digital feedback's command) over the interval, e.g. from the
+        controller's running maximum and its clip counter, both reset by this call.
+        If no time has passed since the previous call, return that report again.
+        """
+        ...
+
 
 class DampingAxis(AdoptOnConnect):
     """Cold-damping loop of one axis: ``gain`` (1/s), ``delay`` (s), ``enabled``.
 
-    Made by :class:`FeedbackElectrodes`, which adopts its state on connect.
+    Its output: ``feedback_voltage`` (V, the largest magnitude since the previous
+    report) and ``feedback_saturation`` (1, the fraction of that interval at the
+    voltage limit), refreshed by the parent's ``read()`` or ``refresh_feedback()``
+    (reading this axis alone shows the last report). Made by
+    :class:`FeedbackElectrodes`, which adopts its state on connect.
     """
 
     def __init__(
@@ -119,6 +174,12 @@ class DampingAxis(AdoptOnConnect):
                 check=lambda v: check_flag(f"{axis} enabled", v),
                 apply=_enabled,
             )
+            self.feedback_voltage, self._set_voltage = soft_signal_r_and_setter(
+                float, math.nan, units="V"
+            )
+            self.feedback_saturation, self._set_saturation = soft_signal_r_and_setter(
+                float, 0.0, units="1"
+            )
         super().__init__(name=name)
 
     async def _adopt_state(self) -> None:
@@ -153,9 +214,17 @@ class FeedbackElectrodes(AdoptOnConnect):
     Notes
     -----
     Signals: ``x``, ``y``, ``z`` are :class:`DampingAxis` (``gain`` 1/s, ``delay`` s,
-    ``enabled``); ``drive_frequency`` (Hz), ``drive_amplitude`` (V), ``drive_enabled``.
-    All are in ``read()``. The limits are configuration: ``gain_limit`` (1/s),
-    ``voltage_limit`` (V), ``max_delay`` (s).
+    ``enabled``, ``feedback_voltage`` V, ``feedback_saturation`` 1);
+    ``drive_frequency`` (Hz), ``drive_amplitude`` (V), ``drive_enabled`` (the
+    calibration tone); ``feedback_voltage`` (V) and ``feedback_saturation`` (1), the
+    largest over the axes, and ``feedback_interval`` (s). All are in ``read()``. The
+    limits are configuration: ``gain_limit`` (1/s), ``voltage_limit`` (V),
+    ``max_delay`` (s).
+
+    The feedback signals come from :meth:`ElectrodeBackend.feedback_report` and cover
+    the time since the previous report: ``read()`` of this device (not of one axis)
+    and :meth:`refresh_feedback` ask for one. Two readers (a plan and a monitor)
+    therefore share the intervals; each sees what happened since the other's read.
 
     On connect the device adopts the hardware's state (see
     :class:`~quietwell.devices.AdoptOnConnect`). A set outside the limits raises
@@ -202,6 +271,15 @@ class FeedbackElectrodes(AdoptOnConnect):
                 check=lambda v: check_flag("drive_enabled", v),
                 apply=backend.set_drive_enabled,
             )
+            self.feedback_voltage, self._set_voltage = soft_signal_r_and_setter(
+                float, math.nan, units="V"
+            )
+            self.feedback_saturation, self._set_saturation = soft_signal_r_and_setter(
+                float, 0.0, units="1"
+            )
+            self.feedback_interval, self._set_interval = soft_signal_r_and_setter(
+                float, 0.0, units="s"
+            )
         with self.add_children_as_readables(StandardReadableFormat.CONFIG_SIGNAL):
             self.gain_limit = const_signal(float(gain_limit_per_s), "1/s")
             self.voltage_limit = const_signal(float(voltage_limit_v), "V")
@@ -221,3 +299,41 @@ class FeedbackElectrodes(AdoptOnConnect):
         self._adopt_frequency(st.drive_frequency_hz)
         self._adopt_amplitude(st.drive_amplitude_v)
         self._adopt_drive_enabled(st.drive_enabled)
+
+    async def refresh_feedback(self) -> FeedbackReport:
+        """Ask the backend for the feedback report and show it in the feedback signals.
+
+        Returns the report (voltages in V, fractions 0..1, interval in s). A
+        saturation outside [0, 1] or a negative voltage or interval raises
+        :class:`~quietwell.devices.BackendDataError` (a fault of the backend).
+        """
+        rep = await self._backend.feedback_report()
+        volts, sats = [], []
+        for a in AXES:
+            v = float(rep.peak_voltage_v[a])
+            f = float(rep.saturation[a])
+            if not (math.isnan(v) or v >= 0) or not 0.0 <= f <= 1.0:
+                raise BackendDataError(
+                    f"{self.name}: backend feedback_report axis {a}: peak_voltage_v={v!r} V "
+                    f"must be >= 0 (or nan) and saturation={f!r} within [0, 1]; fix the backend"
+                )
+            ax = self.axis(a)
+            ax._set_voltage(v)
+            ax._set_saturation(f)
+            volts.append(v)
+            sats.append(f)
+        interval = float(rep.interval_s)
+        if not (math.isfinite(interval) and interval >= 0):
+            raise BackendDataError(
+                f"{self.name}: backend feedback_report interval_s={interval!r} must be "
+                "finite and >= 0 s; fix the backend"
+            )
+        finite = [v for v in volts if not math.isnan(v)]
+        self._set_voltage(max(finite) if finite else math.nan)
+        self._set_saturation(max(sats))
+        self._set_interval(interval)
+        return rep
+
+    async def read(self) -> dict[str, Reading]:
+        await self.refresh_feedback()
+        return await super().read()

@@ -17,6 +17,10 @@ file per stage. The documents are those the tiled HDF5 consolidator expects:
 * ``collect_asset_docs()``: one ``stream_resource`` per file and data key, then one
   ``stream_datum`` per record.
 
+Between records, the signal ``intensity`` (V, not part of ``read()``) asks the
+backend for the total-intensity level now (``read_intensity``), so that a monitor can
+poll it at any time: ``yield from bps.rd(detector.intensity)``.
+
 Every data key can carry a ``key_prefix`` so that two detectors can share a run.
 """
 
@@ -39,6 +43,7 @@ from ophyd_async.core import (
     PathProvider,
     ReadableDataProvider,
     SignalR,
+    SoftSignalBackend,
     StandardDetector,
     StreamableDataProvider,
     StreamResourceDataProvider,
@@ -160,6 +165,10 @@ class _TraceDetector(StandardDetector):
         self.clipped_samples, self._set_clipped = soft_signal_r_and_setter(int, 0, units="count")
         self.intensity_mean, self._set_mean = soft_signal_r_and_setter(float, math.nan, units="V")
         self.records_written, self._set_written = soft_signal_r_and_setter(int, 0, units="count")
+        # Read on demand from the backend (every read asks it): for monitors.
+        self.intensity = SignalR(
+            backend=SoftSignalBackend(float, math.nan, units="V", getter=lambda: backend.read_intensity())
+        )
         self.add_detector_logics(
             _TraceTriggerLogic(self),
             _TraceAcquireLogic(self),
@@ -417,6 +426,10 @@ class MotionDetector(_TraceDetector):
     data keys ``trace_x``, ``trace_y``, ``trace_z``, ``trace_intensity`` map to the
     HDF5 datasets ``/traces/x`` ... ``/traces/intensity``, each
     ``(n_records, record_length)`` float32.
+
+    ``intensity`` (V) is the total-intensity level now, read from the backend on
+    every read (``bps.rd(detector.intensity)``); it is not part of ``read()``, and
+    ``intensity_mean`` (V) stays the mean over the last record.
     """
 
     _record_type = RecordData

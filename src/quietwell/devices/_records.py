@@ -79,6 +79,14 @@ class MotionBackend(Protocol):
         """Acquire one record of ``n_samples`` samples on every channel."""
         ...
 
+    async def read_intensity(self) -> float:
+        """The total-intensity signal now in V (a short average of that channel).
+
+        Cheap and at any time, between records too: what a monitor polls to see that
+        the particle is still there. Takes no record and writes no file.
+        """
+        ...
+
 
 @runtime_checkable
 class HeterodyneBackend(Protocol):
@@ -89,4 +97,12 @@ class HeterodyneBackend(Protocol):
 
     async def record(self, n_samples: int) -> HeterodyneRecord:
         """Acquire one record of ``n_samples`` samples on every channel."""
+        ...
+
+    async def read_intensity(self) -> float:
+        """The total-intensity signal now in V (a short average of that channel).
+
+        Cheap and at any time, between records too: what a monitor polls to see that
+        the particle is still there. Takes no record and writes no file.
+        """
         ...
