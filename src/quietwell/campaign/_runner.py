@@ -631,7 +631,7 @@ class _DocWatch:
                 r.ledger.append("monitor", step=self._step, attempt=self._attempt,
                                 uid=self.uid, condition=d.get("condition"),
                                 action=d.get("action"), value=d.get("value"),
-                                message=d.get("message"))
+                                record=d.get("record"), message=d.get("message"))
                 _log.warning("monitor: %s -> %s (%s)", d.get("condition"), d.get("action"),
                              d.get("message"))
                 r.progress.monitor(d)

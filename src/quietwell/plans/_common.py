@@ -176,7 +176,8 @@ class Recorder:
         # event, a second fit submitted) while this object's records and pending fits
         # stay where they are. Without one, a pause, a suspender or a signal ends the
         # run (exit_status "abort"), and the step is redone as a whole.
-        yield from self.monitors.before_record()
+        self.monitors.record = self._saved + 1
+        yield from self.monitors.before_record(self.detectors[0])
         group = short_uid("record")
         for det in self.detectors:
             if hasattr(det, "trigger"):

@@ -21,7 +21,8 @@ setup's ``[monitors]`` say:
 Waiting never rewinds anything: no checkpoint is involved, records taken while a
 condition held are kept in ``primary`` (raw data are never thrown away) but left out of
 the summaries. Every change of a condition is one event in the run's ``monitor`` stream
-(``condition``, ``action``, ``value`` with its ``units``, ``message``).
+(``condition``, ``action``, ``value`` with its ``units``, ``message``, and ``record``:
+the ``seq_num`` in ``primary`` of the record it concerns).
 """
 
 from __future__ import annotations
@@ -60,6 +61,9 @@ class Monitors:
         self.device = DerivedValues("monitor")
         self.active: dict[str, str] = {}  # condition -> message while it holds
         self.events: list[dict] = []
+        #: seq_num in ``primary`` of the record an event concerns (the recorder sets it:
+        #: the next record before it is taken, the record itself after)
+        self.record = 0
         self._no_peak = 0
         self._ranges = {g.name: (g.range_min, g.range_max) for g in app.setup.vacuum.gauges}
         self._accuracy = {g.name: g.accuracy for g in app.setup.vacuum.gauges}
@@ -71,8 +75,9 @@ class Monitors:
         self.device.put("action", action, "")
         self.device.put("value", float(value) if value is not None else math.nan, units)
         self.device.put("message", message, "")
+        self.device.put("record", int(self.record), "")
         self.events.append({"condition": condition, "action": action, "value": value,
-                            "units": units, "message": message})
+                            "units": units, "message": message, "record": self.record})
         yield from bps.trigger_and_read([self.device], name="monitor")
 
     def _change(self, condition: str, holds: bool, action: str, value: float, units: str,
@@ -106,11 +111,20 @@ class Monitors:
         return best[0], best[1]
 
     # --- around a record ------------------------------------------------------------
-    def before_record(self):
-        """Plan stub: wait out a pressure excursion or a gauge fault; refuse a lost particle."""
+    def before_record(self, detector: Any = None):
+        """Plan stub: wait out a pressure excursion or a gauge fault; refuse a lost particle.
+
+        Ends by reading the electrodes, so that the saturation after the record covers the
+        record alone.
+        """
         spec = self.spec
         waited = 0.0
         while True:
+            sig = getattr(detector, "intensity", None)
+            if sig is not None:
+                value = yield from bps.rd(sig)
+                yield from self._check_intensity(
+                    float(value) if value is not None else None, detector, "before the record")
             gauges = yield from self._gauges()
             p, used = self._pressure(gauges)
             setpoint = yield from bps.rd(self.app.pressure.setpoint)
@@ -124,7 +138,7 @@ class Monitors:
                     f"gauge_fault:{name}", name in faulty,
                     "switch gauge" if math.isfinite(p) else "suspend",
                     reading if isinstance(reading, float) else math.nan, "Pa",
-                    f"gauge {name} status {status!r}, reading {reading!r} Pa; using "
+                    f"gauge {name} status {str(status)!r}, reading {reading!r} Pa; using "
                     f"{used if math.isfinite(p) else 'no gauge'}")
             band = spec.pressure_band
             out_of_band = (setpoint is not None and math.isfinite(float(setpoint))
@@ -139,6 +153,7 @@ class Monitors:
             yield from self._change("no_gauge", no_reading, "suspend", math.nan, "Pa",
                                     f"no gauge covers the pressure (faulty: {faulty})")
             if not (out_of_band or no_reading):
+                yield from self._saturation()
                 return
             if spec.pressure_policy != "wait" and waited >= spec.pressure_timeout:
                 what = "pressure_excursion" if out_of_band else "no_gauge"
@@ -154,28 +169,31 @@ class Monitors:
         lo, hi = self._ranges.get(name, (0.0, math.inf))
         return not math.isfinite(p) or lo <= p <= hi
 
-    def after_record(self, readings: dict, detector: Any = None):
-        """Plan stub: True if the record is clean; raises for a lost particle.
-
-        The intensity threshold is at most half the digitiser's input range: a channel
-        clipped at a small range (set for microvolt motion) reads the range, not zero.
-        """
-        spec = self.spec
-        intensity = next((v for k, v in readings.items() if k.endswith("intensity_mean")),
-                         None)
-        threshold = spec.intensity_min
+    def _check_intensity(self, intensity: Any, detector: Any, where: str):
+        """Plan stub: raise :class:`ParticleLostError` if ``intensity`` (V) is below the
+        threshold: ``intensity_min``, at most half the digitiser's input range (a channel
+        clipped at a small range, set for microvolt motion, reads the range, not zero)."""
+        threshold = self.spec.intensity_min
+        if threshold <= 0 or not isinstance(intensity, float) or not math.isfinite(intensity):
+            return
         rng = getattr(detector, "input_range", None)
-        if rng is not None and threshold > 0:
+        if rng is not None:
             value = yield from bps.rd(rng)
             if value is not None and math.isfinite(float(value)) and float(value) > 0:
                 threshold = min(threshold, 0.5 * float(value))
-        if (threshold > 0 and isinstance(intensity, float)
-                and math.isfinite(intensity) and intensity < threshold):
-            msg = (f"particle lost: intensity {intensity:.3g} V below the threshold "
-                   f"{threshold:.3g} V (intensity_min {spec.intensity_min:g} V, at most half "
-                   "the input range)")
+        if intensity < threshold:
+            msg = (f"particle lost: intensity {intensity:.3g} V {where} below the threshold "
+                   f"{threshold:.3g} V (intensity_min {self.spec.intensity_min:g} V, at most "
+                   "half the input range)")
             yield from self._emit("particle_lost", "end run, stop campaign", intensity, "V", msg)
             raise ParticleLostError(msg)
+
+    def after_record(self, readings: dict, detector: Any = None):
+        """Plan stub: True if the record is clean; raises for a lost particle."""
+        spec = self.spec
+        intensity = next((v for k, v in readings.items() if k.endswith("intensity_mean")),
+                         None)
+        yield from self._check_intensity(intensity, detector, "in the record")
         fraction = yield from self._saturation()
         saturated = fraction is not None and fraction > spec.saturation_fraction
         msg = (f"electrode drive at its limit for {fraction:.2g} of the record, more than "
@@ -193,11 +211,14 @@ class Monitors:
         return not saturated
 
     def _saturation(self):
+        """Plan stub: the largest fraction of time an axis's feedback drive sat at its
+        limit since the previous read of the electrodes (None if they do not say)."""
         el = self.app.electrodes
-        sig = getattr(el, "saturated_fraction", None)
-        if sig is None:
+        if getattr(el, "feedback_saturation", None) is None:
             return None
-        value = yield from bps.rd(sig)
+        r = yield from bps.read(el)  # a fresh report: it starts the next interval
+        key = f"{el.name}-feedback_saturation"
+        value = (r or {}).get(key, {}).get("value")
         return float(value) if value is not None else None
 
     def after_fit(self, fit: dict):

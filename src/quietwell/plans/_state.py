@@ -160,7 +160,11 @@ def reach_state(app: Any, needs: LabState):
     if needs.feedback == ON and needs.gain is not None:
         yield from set_feedback(app, needs.gain)
     if needs.pressure is not None:
-        yield from bps.mv(app.pressure, float(needs.pressure))
+        setpoint = yield from bps.rd(app.pressure.setpoint)
+        same = (setpoint is not None and math.isfinite(float(setpoint))
+                and math.isclose(float(setpoint), float(needs.pressure), rel_tol=1e-9))
+        if not same:  # already there: no second wait for the controller to settle
+            yield from bps.mv(app.pressure, float(needs.pressure))
     if needs.feedback == OFF:
         yield from set_feedback(app, None)
 
