@@ -111,3 +111,128 @@ def test_gauge_fault_switches_gauge_and_pressure_excursion_waits(tmp_path):
         prim = run["primary"].read()
         assert set(np.asarray(prim["pressure_gauge"])) <= {"tc"}
         assert run.metadata["stop"]["exit_status"] == "success"
+
+
+def _runs_by_step(client, cid):
+    out = {}
+    for uid in client:
+        run = client[uid]
+        if run.metadata["start"].get("campaign_id") == cid:
+            out.setdefault(run.metadata["start"]["campaign_step"], []).append(run)
+    return out
+
+
+def _check_clean_summaries(runs, ledger):
+    """Every monitor event is in its run's stream and the ledger; no summary used a
+    record a monitor left out."""
+    for step, rs in runs.items():
+        for run in rs:
+            uid = run.metadata["start"]["uid"]
+            in_ledger = [e for e in ledger if e["event"] == "monitor" and e.get("uid") == uid]
+            stream = run["monitor"].read() if "monitor" in run else {"condition": []}
+            assert len(stream["condition"]) == len(in_ledger)
+            left = {int(e["record"]) for e in in_ledger if e["action"] == "record left out"}
+            if "summary" in run:
+                s = run["summary"].read()
+                used = {int(x) for x in np.asarray(s["records_used"]).reshape(-1)
+                        if math.isfinite(x)}
+                assert not used & left, (step, used & left)
+                n = len(run["primary"].read()["time"])
+                assert len(used) + int(np.asarray(s["records_left_out"]).reshape(-1)[0]) == n
+
+
+def test_the_shipped_night_with_faults_shows_every_monitor(tmp_path):
+    root = Path(__file__).resolve().parents[1]
+    data = tmp_path / "data"
+    with open_session("amber", data) as s:
+        with pytest.raises(ParticleLost):
+            run_campaign(root / "campaigns" / "night-with-faults.toml", s.setup, data,
+                         session=s)
+        ledger = read_ledger(campaign_dirs(data)[-1] / "ledger.jsonl")
+        runs = _runs_by_step(s.store.client, ledger[0]["campaign_id"])
+        seen = {(e["step"], e["condition"].split(":")[0], e["action"]) for e in ledger
+                if e["event"] == "monitor"}
+        assert (0, "pressure_excursion", "suspend") in seen
+        assert (0, "pressure_excursion", "resume") in seen
+        assert (1, "gauge_fault", "switch gauge") in seen
+        assert (2, "feedback_saturation", "record left out") in seen
+        assert (4, "particle_lost", "end run, stop campaign") in seen
+        assert [r.metadata["stop"]["exit_status"] for st in range(4) for r in runs[st]] == \
+            ["success"] * 4
+        assert runs[4][0].metadata["stop"]["exit_status"] == "fail"
+        _check_clean_summaries(runs, ledger)
+
+
+@pytest.mark.parametrize("seed", [20261203])
+def test_an_eight_hour_night_with_random_faults(tmp_path, seed):
+    """A pump-down to 1e-8 mbar (hours of outgassing on the sim clock), a gain sweep and
+    reheating at three pressures, with each kind of fault at a random step and time."""
+    rng = np.random.default_rng(seed)
+    steps = '''
+[campaign]
+name = "random-night"
+
+[[step]]
+id = "pumpdown"
+plan = "pressure_sweep"
+pressures = ["10 mbar", "3 mbar", "1 mbar", "0.3 mbar", "1e-2 mbar", "1e-4 mbar", "1e-6 mbar", "1e-8 mbar"]
+records_per_step = 2
+sample_rate = "1 MHz"
+record_length = 65536
+input_range = "2 V"
+
+[[step]]
+id = "gains"
+plan = "gain_sweep"
+pressure = "1e-8 mbar"
+gains = ["3000 1/s", "8000 1/s", "20000 1/s", "50000 1/s"]
+records_per_step = 3
+sample_rate = "1 MHz"
+record_length = 65536
+input_range = "20 mV"
+'''
+    for p in ("1e-6", "1e-7", "1e-8"):
+        steps += f'''
+[[step]]
+id = "reheat-{p}"
+plan = "reheating_cycles"
+pressure = "{p} mbar"
+cycles = 8
+feedback_gain = {{ from = "gains", result = "optimal_gain", clip = ["5e3 1/s", "1e5 1/s"], otherwise = "2e4 1/s" }}
+off_time = "4 ms"
+sample_rate = "1 MHz"
+input_range = "20 mV"
+'''
+    ids = ["pumpdown", "gains", "reheat-1e-6", "reheat-1e-7", "reheat-1e-8"]
+    faults = [("pressure_burst", 'factor = 20\nduration = "30 s"'),
+              ("gauge_dropout", 'gauge = "ion"\nduration = "20 min"'),
+              ("saturate_drive", 'duration = "0.2 s"'),
+              ("change_charge", "delta = -2"),
+              ("lose_particle", "")]
+    for kind, extra in faults:
+        step = ids[rng.integers(1, len(ids))] if kind != "gauge_dropout" else "pumpdown"
+        after = float(rng.uniform(0.0, 0.2))
+        steps += f'\n[[sim.fault]]\nkind = "{kind}"\nstep = "{step}"\nafter = "{after:.4f} s"\n'
+        steps += extra + "\n"
+    path = tmp_path / "random-night.toml"
+    path.write_text(steps)
+    data = tmp_path / "data"
+    with open_session("amber", data) as s:
+        try:
+            out = run_campaign(path, s.setup, data, session=s)
+            stopped = False
+        except ParticleLost:
+            stopped = True
+        ledger = read_ledger(campaign_dirs(data)[-1] / "ledger.jsonl")
+        assert s.lab.now > 8 * 3600 or stopped  # a night on the sim clock
+        end = ledger[-1]
+        if stopped:  # it stops at the particle loss and only there
+            assert end["particle_lost"] and s.lab.truth().lost
+        else:
+            assert end["status"] == "completed" and len(out.uids) == len(ids)
+        runs = _runs_by_step(s.store.client, ledger[0]["campaign_id"])
+        done = {e["step"] for e in ledger if e["event"] == "done"}
+        for step, rs in runs.items():
+            if step in done:
+                assert any(r.metadata["stop"]["exit_status"] == "success" for r in rs)
+        _check_clean_summaries(runs, ledger)

@@ -49,10 +49,10 @@ class WhereCompiled(event.Listener):
 event.register("numba:compile", WhereCompiled())
 
 from quietwell.analysis import fit_channels, welch_psd
-from quietwell.cli import default_nperseg
+from quietwell.analysis._resolution import segment_length
 
 x = np.load(sys.argv[1])
-nperseg = default_nperseg(x.shape[-1])
+nperseg = segment_length(x.shape[-1])
 psd = welch_psd(x, float(sys.argv[2]), nperseg=nperseg, noverlap=nperseg // 2, workers=3)
 fits = fit_channels(psd, peaks=1, workers=3)
 print(json.dumps({
