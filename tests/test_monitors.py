@@ -198,7 +198,7 @@ id = "reheat-{p}"
 plan = "reheating_cycles"
 pressure = "{p} mbar"
 cycles = 8
-feedback_gain = {{ from = "gains", result = "optimal_gain", clip = ["5e3 1/s", "1e5 1/s"], otherwise = "2e4 1/s" }}
+feedback_gain = {{ from = "gains", result = "optimal_gain", clip = ["5e3 1/s", "1e5 1/s"], otherwise = 2e4 }}
 off_time = "4 ms"
 sample_rate = "1 MHz"
 input_range = "20 mV"
