@@ -236,3 +236,59 @@ input_range = "20 mV"
             if step in done:
                 assert any(r.metadata["stop"]["exit_status"] == "success" for r in rs)
         _check_clean_summaries(runs, ledger)
+
+
+def test_a_pressure_excursion_past_its_timeout_follows_the_policy(tmp_path):
+    import dataclasses as dc
+
+    from quietwell._profile import find_profile
+    from quietwell.setup import load_setup
+
+    base = load_setup(find_profile("amber"))
+    setup = dc.replace(base, monitors=dc.replace(base.monitors, pressure_timeout=30.0,
+                                                 pressure_policy="skip", poll_interval=5.0))
+    text = '''
+[campaign]
+name = "leaky"
+
+[[step]]
+id = "thermal"
+plan = "thermal_calibration"
+pressure = "3 mbar"
+records = 4
+settle_time = "2 s"
+sample_rate = "1 MHz"
+record_length = 65536
+input_range = "2 V"
+
+[[step]]
+id = "thermal-again"
+plan = "thermal_calibration"
+pressure = "5 mbar"
+records = 3
+sample_rate = "1 MHz"
+record_length = 65536
+input_range = "2 V"
+
+[[sim.fault]]
+kind = "pressure_burst"
+step = "thermal"
+after = "2.05 s"
+factor = 30
+duration = "10 min"
+'''
+    path = tmp_path / "leaky.toml"
+    path.write_text(text)
+    data = tmp_path / "data"
+    with open_session(setup, data) as s:
+        out = run_campaign(path, setup, data, session=s)
+        ledger = read_ledger(campaign_dirs(data)[-1] / "ledger.jsonl")
+        skipped = [e for e in ledger if e["event"] == "skipped"]
+        assert [e["step"] for e in skipped] == [0] and "pressure_timeout" in skipped[0]["reason"]
+        assert list(out.uids) == ["thermal-again"]  # the campaign went on with the next step
+        run = s.store.client[ledger[[e["event"] for e in ledger].index("run")]["uid"]]
+        assert run.metadata["stop"]["exit_status"] == "fail"
+        assert "policy skip" in run.metadata["stop"]["reason"]
+        mon = run["monitor"].read()
+        assert list(mon["action"])[-1] == "end run (skip)"
+        assert "summary" not in run
