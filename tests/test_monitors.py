@@ -134,8 +134,8 @@ def _check_clean_summaries(runs, ledger):
             left = {int(e["record"]) for e in in_ledger if e["action"] == "record left out"}
             if "summary" in run:
                 s = run["summary"].read()
-                used = {int(x) for x in np.asarray(s["records_used"]).reshape(-1)
-                        if math.isfinite(x)}
+                text = str(np.asarray(s["records_used"]).reshape(-1)[0])
+                used = {int(x) for x in text.split(",") if x}
                 assert not used & left, (step, used & left)
                 n = len(run["primary"].read()["time"])
                 assert len(used) + int(np.asarray(s["records_left_out"]).reshape(-1)[0]) == n

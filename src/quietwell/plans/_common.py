@@ -245,13 +245,14 @@ def emit_summary(values: DerivedValues, rec: Recorder | None = None):
     """Plan stub: one event in the ``summary`` stream with the derived results.
 
     With the run's recorder, the summary also says which records it used
-    (``records_used``: their ``seq_num`` in ``primary``) and how many were left out
-    because a monitor's condition held (``records_left_out``).
+    (``records_used``: their ``seq_num`` in ``primary``, as text "1,2,5", since a table
+    cell holds one value) and how many were left out because a monitor's condition held
+    (``records_left_out``).
     """
     if rec is not None:
         left = set(rec.left_out)
-        values.put("records_used", [float(i) for i in range(1, rec._saved + 1)
-                                    if i not in left] or [math.nan], "")
+        values.put("records_used", ",".join(str(i) for i in range(1, rec._saved + 1)
+                                            if i not in left), "")
         values.put("records_left_out", len(left), "")
     yield from bps.trigger_and_read([values], name="summary")
 
