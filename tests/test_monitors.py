@@ -205,7 +205,7 @@ input_range = "20 mV"
 '''
     ids = ["pumpdown", "gains", "reheat-1e-6", "reheat-1e-7", "reheat-1e-8"]
     faults = [("pressure_burst", 'factor = 20\nduration = "30 s"'),
-              ("gauge_dropout", 'gauge = "ion"\nduration = "20 min"'),
+              ("gauge_dropout", 'gauge = "ion"\nduration = "5 min"'),
               ("saturate_drive", 'duration = "0.2 s"'),
               ("change_charge", "delta = -2"),
               ("lose_particle", "")]
