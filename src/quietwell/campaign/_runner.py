@@ -305,6 +305,10 @@ class _Runner:
             finally:
                 session.RE.unsubscribe(token)
                 self.progress.close()
+                try:  # the rebuild must end before the store closes
+                    self._recovered()
+                except QuietwellError as exc:
+                    _log.error("%s", exc)
         finally:
             if own and session is not None:
                 session.close()
@@ -322,17 +326,30 @@ class _Runner:
             f"--resume --data-dir {Path(self.data_dir)}", sig.code)
 
     def _recover(self) -> None:
-        """Rebuild unfinished runs from their journals, adopt completed ones."""
+        """Adopt completed runs from their journals; rebuild unfinished runs in the
+        catalog in the background (the journals, not the catalog, decide what is done,
+        so the redo need not wait for the catalog: see :meth:`_recovered`)."""
         store = self.session.store
-        recovered = store.recover()
-        if recovered:
-            _log.info("recovered %d run(s) from their journals: %s", len(recovered),
-                      ", ".join(recovered))
+        journal_runs = _journal_runs(store.journal_dir, self.cid)  # before any rename
+        self._recovery_error: BaseException | None = None
+
+        def rebuild() -> None:
+            try:
+                recovered = store.recover()
+                if recovered:
+                    _log.info("recovered %d run(s) from their journals: %s", len(recovered),
+                              ", ".join(recovered))
+            except BaseException as exc:  # noqa: BLE001 - reported by _recovered()
+                self._recovery_error = exc
+
+        self._recovery = threading.Thread(target=rebuild, name="quietwell-recover",
+                                          daemon=True)
+        self._recovery.start()
         self.faults.hit("resume")
         results, _, _ = self._state_from_ledger()
         done = {self.checked.steps[i].step.id for i in range(len(self.checked.steps))
                 if self.checked.steps[i].step.id in results}
-        for run in _journal_runs(store.journal_dir, self.cid):
+        for run in journal_runs:
             sid = self.checked.steps[run["step"]].step.id
             if sid in done or run["exit_status"] != "success" or run["summary"] is None:
                 continue
@@ -346,7 +363,7 @@ class _Runner:
                       run["uid"])
         # runs of this campaign the ledger never heard of (killed before it wrote them)
         known = {e.get("uid") for e in self.ledger.entries()}
-        for run in _journal_runs(store.journal_dir, self.cid):
+        for run in journal_runs:
             if run["uid"] not in known:
                 self.ledger.append("failed", step=run["step"], attempt=run["attempt"],
                                    uid=run["uid"], exit_status=run["exit_status"] or "abort",
@@ -476,7 +493,20 @@ class _Runner:
         _log.error("step %d (%s) attempt %d: %s (%s)", cs.step.index, cs.step.id, attempt,
                    status, reason)
 
+    def _recovered(self) -> None:
+        """Wait for the background rebuild of interrupted runs (see :meth:`_recover`)."""
+        thread = getattr(self, "_recovery", None)
+        if thread is None:
+            return
+        thread.join()
+        self._recovery = None
+        if self._recovery_error is not None:
+            raise QuietwellError(f"rebuilding the interrupted runs from their journals failed "
+                                 f"({self._recovery_error}); run quietwell recover --data-dir "
+                                 f"{Path(self.data_dir)}, then resume again")
+
     def _supersede(self, old: str, new: str) -> None:
+        self._recovered()
         try:
             node = self.session.store.client[old]
             node.update_metadata(metadata={**dict(node.metadata), "superseded_by": new})
