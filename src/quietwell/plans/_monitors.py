@@ -120,11 +120,12 @@ class Monitors:
         spec = self.spec
         waited = 0.0
         while True:
-            sig = getattr(detector, "intensity", None)
+            motion = self.app.detector
+            sig = getattr(motion, "intensity", None)
             if sig is not None:
                 value = yield from bps.rd(sig)
                 yield from self._check_intensity(
-                    float(value) if value is not None else None, detector, "before the record")
+                    float(value) if value is not None else None, motion, "before the record")
             gauges = yield from self._gauges()
             p, used = self._pressure(gauges)
             setpoint = yield from bps.rd(self.app.pressure.setpoint)
@@ -191,9 +192,11 @@ class Monitors:
     def after_record(self, readings: dict, detector: Any = None):
         """Plan stub: True if the record is clean; raises for a lost particle."""
         spec = self.spec
-        intensity = next((v for k, v in readings.items() if k.endswith("intensity_mean")),
-                         None)
-        yield from self._check_intensity(intensity, detector, "in the record")
+        # the motion detector's intensity channel tells whether the particle is there
+        # (a heterodyne channel's level is set by the local oscillator)
+        motion = self.app.detector
+        intensity = readings.get("intensity_mean") if detector is motion else None
+        yield from self._check_intensity(intensity, motion, "in the record")
         fraction = yield from self._saturation()
         saturated = fraction is not None and fraction > spec.saturation_fraction
         msg = (f"electrode drive at its limit for {fraction:.2g} of the record, more than "
