@@ -16,8 +16,6 @@ from __future__ import annotations
 
 import logging
 import math
-import os
-import signal
 import threading
 import time
 import uuid
@@ -43,6 +41,7 @@ from ._file import (
     step_error,
 )
 from ._ledger import Ledger, campaign_dirs, read_ledger
+from ._process import Faults, Signals, log_to, quiet_re
 from ._progress import Progress
 
 __all__ = ["run_campaign", "resume_campaign", "CampaignInterrupted", "CampaignOutcome",
@@ -172,67 +171,6 @@ def resume_campaign(data_dir: str | Path, *, progress: Progress | None = None,
     return runner.run(None, resume=True)
 
 
-class _PrintsToLog:
-    """bluesky prints its state changes ("Aborting: ...") to standard output; during a
-    campaign they go to the log instead, so the terminal shows the live view and one
-    closing line."""
-
-    def write(self, text: str) -> int:
-        for line in text.splitlines():
-            if line.strip():
-                _log.info("bluesky: %s", line.strip())
-        return len(text)
-
-    def flush(self) -> None:
-        pass
-
-
-def _quiet_re(RE: Any, plan: Any) -> Any:
-    import contextlib
-
-    with contextlib.redirect_stdout(_PrintsToLog()):
-        return RE(plan)
-
-
-class _Signals:
-    """SIGINT and SIGTERM end the current run (abort, with a plain reason) and the
-    campaign; a second signal while ending is ignored (the store must be closed)."""
-
-    REASONS = {signal.SIGINT: ("interrupted by the user", 130),
-               signal.SIGTERM: ("terminated", 143)}
-
-    def __init__(self, session: Any) -> None:
-        self.session = session
-        self.reason: str | None = None
-        self.code = 0
-        self._old: dict = {}
-
-    def __enter__(self) -> _Signals:
-        if threading.current_thread() is threading.main_thread():
-            for sig in self.REASONS:
-                self._old[sig] = signal.signal(sig, self._handle)
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        for sig, old in self._old.items():
-            signal.signal(sig, old)
-
-    def _handle(self, signum: int, frame: object) -> None:
-        if self.reason is not None:
-            return
-        self.reason, self.code = self.REASONS[signal.Signals(signum)]
-        self.session.stop_reason = self.reason
-        threading.Thread(target=self._abort, name="quietwell-abort", daemon=True).start()
-
-    def _abort(self) -> None:
-        from bluesky.utils import TransitionError
-
-        try:
-            self.session.RE.abort(self.reason)
-        except (TransitionError, RuntimeError):
-            pass  # idle between steps: the runner sees the flag before the next step
-
-
 class _Runner:
     def __init__(self, checked: CheckedCampaign, cid: str, folder: Path, ledger: Ledger,
                  data_dir: str | Path, progress: Progress | None, on_step: Callable | None):
@@ -241,7 +179,7 @@ class _Runner:
         self.progress = progress or Progress(quiet=True)
         self.on_step = on_step
         self.outcome = CampaignOutcome(cid, folder)
-        self.faults = _Faults.from_env()
+        self.faults = Faults.from_env()
         self._lost = False
 
     # --- the ledger's view -------------------------------------------------------
@@ -274,7 +212,7 @@ class _Runner:
     def run(self, session: Any, *, resume: bool = False) -> CampaignOutcome:
         from ..session import open_session
 
-        handler = _log_to(self.folder / "log.txt")
+        handler = log_to(self.folder / "log.txt")
         logging.captureWarnings(True)  # the fits' warnings into the log, not the terminal
         own = session is None
         try:
@@ -286,7 +224,7 @@ class _Runner:
             if self.faults.point == "trigger":
                 session.RE.msg_hook = self.faults.on_msg
             try:
-                with _Signals(session) as sig:
+                with Signals(session) as sig:
                     self.signals = sig
                     try:
                         if resume:
@@ -403,7 +341,7 @@ class _Runner:
                   _jsonable_params(checked.params))
         self.progress.step(step.index, step.id, step.plan, checked.duration_s)
         target = _target(self._before(step.index), checked.needs)
-        _quiet_re(session.RE, reach_state(session.apparatus, target))
+        quiet_re(session.RE, reach_state(session.apparatus, target))
         self._inject_faults(step)
         md = {"campaign_id": self.cid, "campaign_step": step.index, "campaign_attempt": attempt,
               "campaign_step_id": step.id}
@@ -413,7 +351,7 @@ class _Runner:
 
         uid = None
         try:
-            res = _quiet_re(session.RE, spec.plan(session.apparatus, checked, md))
+            res = quiet_re(session.RE, spec.plan(session.apparatus, checked, md))
             uid = res.run_start_uids[0] if res.run_start_uids else None
             status, reason = res.exit_status, res.reason
             summary = dict(res.plan_result or {})
@@ -534,7 +472,7 @@ class _Runner:
                 yield from bps.mv(app.laser.power, spec.safe_laser_power)
 
         try:
-            _quiet_re(self.session.RE, plan())
+            quiet_re(self.session.RE, plan())
         except Exception as exc:  # noqa: BLE001 - logged; the store must still close
             _log.error("could not put the apparatus into its safe state: %s", exc)
 
@@ -543,7 +481,7 @@ class _Runner:
         try:
             gain = next((cs.after.gain for cs in reversed(self.checked.steps)
                          if cs.after is not None and cs.after.gain), None)
-            _quiet_re(self.session.RE, safe_state(self.session.apparatus, gain))
+            quiet_re(self.session.RE, safe_state(self.session.apparatus, gain))
         except Exception as exc:  # noqa: BLE001 - logged; the store must still close
             _log.error("could not put the apparatus into its safe state: %s", exc)
 
@@ -669,48 +607,3 @@ class _DocWatch:
             r.faults.hit("stop")
 
 
-class _Faults:
-    """Fault injection for the crash tests (``QUIETWELL_FAULT=POINT:N``): the process
-    kills itself with SIGKILL at the N-th time it passes POINT (``event``: a primary
-    event, ``trigger``: 30 ms after a record began, ``stop``: a run's stop document,
-    ``done``: step N written to the ledger, ``resume``: after recovery). Unset in use."""
-
-    def __init__(self, point: str | None, n: int) -> None:
-        self.point, self.n, self.seen = point, n, 0
-
-    @classmethod
-    def from_env(cls) -> _Faults:
-        spec = os.environ.get("QUIETWELL_FAULT", "")
-        point, _, n = spec.partition(":")
-        return cls(point or None, int(n or 1))
-
-    def on_msg(self, msg: Any) -> None:
-        if msg.command == "trigger" and getattr(msg.obj, "name", "") != "fitter":
-            self.seen += 1
-            if self.seen == self.n:
-                threading.Timer(0.03, os.kill, (os.getpid(), signal.SIGKILL)).start()
-
-    def hit(self, point: str, index: int | None = None) -> None:
-        if point != self.point:
-            return
-        if index is not None:
-            if index == self.n:
-                os.kill(os.getpid(), signal.SIGKILL)
-            return
-        self.seen += 1
-        if self.seen == self.n:
-            os.kill(os.getpid(), signal.SIGKILL)
-
-
-def _log_to(path: Path) -> logging.Handler:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handler = logging.FileHandler(path, encoding="utf-8")
-    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
-    handler.setLevel(logging.INFO)
-    # on the root logger: the libraries' warnings and errors (bluesky's "Run aborted"
-    # with its traceback) go to the log file, not to the terminal
-    logging.getLogger().addHandler(handler)
-    ours = logging.getLogger("quietwell")
-    if ours.level == logging.NOTSET or ours.level > logging.INFO:
-        ours.setLevel(logging.INFO)
-    return handler
