@@ -701,7 +701,7 @@ def _catalog_alone(data: Path, snapshot: Path, logs: Path) -> tuple[float, float
     _restore(data, snapshot)
     os.sync()
     cat = data / "catalog"
-    tail = [str(cat), str(data / "raw"), str(data / "backup"), "100"]
+    tail = [str(cat), str(data / "raw"), str(data / "backup"), "100", str(os.getpid())]
     t_uri = _time_to_uri([sys.executable, "-m", "quietwell.store._serve", *tail], logs)
     t0 = time.perf_counter()
     subprocess.run([sys.executable, "-m", "tiled", "catalog", "init", "--if-not-exists",
