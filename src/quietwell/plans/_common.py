@@ -22,6 +22,7 @@ from ..live import LiveFitter
 from ..physics import AXES
 from ..setup import Setup
 from ._derived_device import DerivedValues
+from ._state import best_gauge
 
 __all__ = ["Apparatus", "Recorder", "RecordMismatchError", "run_metadata", "set_feedback", "wait_lab",
            "emit_summary"]
@@ -152,23 +153,19 @@ class Recorder:
         self.left_out: list[int] = []
         self._saved = 0
         self._unread: list[tuple[int, bool]] = []  # (seq_num, clean) whose fit is unread
-        self._accuracy = {g.name: g.accuracy for g in app.setup.vacuum.gauges}
 
     @property
     def _outstanding(self) -> int:
         return len(self._unread)
 
     def _choose(self, readings: dict) -> tuple[float, str]:
-        best = (math.nan, "none", math.inf)
+        gauges = {}
         for g in self.app.gauges:
             p = readings.get(f"{g.name}-pressure")
             st = readings.get(f"{g.name}-status")
-            if p is None or st is None or str(st) != "ok" or not math.isfinite(p):
-                continue
-            acc = self._accuracy.get(g.name, 1.0)
-            if acc < best[2]:
-                best = (float(p), g.name, acc)
-        return best[0], best[1]
+            if p is not None and st is not None:
+                gauges[g.name] = (float(p), str(st) == "ok")
+        return best_gauge(self.app.setup, gauges)
 
     def record(self):
         """Plan stub: one record and its event; returns True if the record is clean."""

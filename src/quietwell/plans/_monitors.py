@@ -35,6 +35,7 @@ import bluesky.plan_stubs as bps
 from .._errors import QuietwellError
 from .._plain import plain
 from ._derived_device import DerivedValues
+from ._state import best_gauge
 
 __all__ = ["Monitors", "ParticleLostError", "MonitorStop"]
 
@@ -66,7 +67,6 @@ class Monitors:
         self.record = 0
         self._no_peak = 0
         self._ranges = {g.name: (g.range_min, g.range_max) for g in app.setup.vacuum.gauges}
-        self._accuracy = {g.name: g.accuracy for g in app.setup.vacuum.gauges}
 
     # --- events -------------------------------------------------------------------
     def _emit(self, condition: str, action: str, value: float, units: str, message: str):
@@ -104,11 +104,7 @@ class Monitors:
         return out
 
     def _pressure(self, gauges: dict) -> tuple[float, str]:
-        best = (math.nan, "none", math.inf)
-        for name, (p, ok, _) in gauges.items():
-            if ok and self._accuracy.get(name, 1.0) < best[2]:
-                best = (float(p), name, self._accuracy.get(name, 1.0))
-        return best[0], best[1]
+        return best_gauge(self.app.setup, {n: (p, ok) for n, (p, ok, _) in gauges.items()})
 
     # --- around a record ------------------------------------------------------------
     def before_record(self, detector: Any = None):

@@ -192,6 +192,21 @@ def safe_state(app: Any, gain: float | None = None):
 # --- cleaning of parameters (pure; used by every validate function) ----------------
 
 
+def best_gauge(setup: Setup, readings: Mapping[str, tuple[float, bool]]) -> tuple[float, str]:
+    """The reading of the most accurate gauge that reads ``ok``: ``(pressure, name)``.
+
+    ``readings`` maps a gauge name to ``(pressure, ok)``; a gauge not in the setup counts
+    as accurate to 100 %.  ``(nan, "none")`` when no gauge reads.
+    """
+    accuracy = {g.name: g.accuracy for g in setup.vacuum.gauges}
+    best = (math.nan, "none", math.inf)
+    for name, (p, ok) in readings.items():
+        acc = accuracy.get(name, 1.0)
+        if ok and math.isfinite(p) and acc < best[2]:
+            best = (float(p), name, acc)
+    return best[0], best[1]
+
+
 def _number(value: Any, what: str, unit: str) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
         raise InputError(f"{what}={value!r} is not a number; give a value in {unit}", key=what)
