@@ -6,6 +6,7 @@ from ._schema import (
     GaugeSpec,
     LimitSpec,
     MonitorSpec,
+    DataSpec,
     ParticleSpec,
     Setup,
     TrapSpec,
@@ -16,7 +17,7 @@ from ._schema import (
 from ._units import KINDS, display, parse_quantity
 
 __all__ = [
-    "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec", "MonitorSpec", "ParticleSpec",
+    "DataSpec", "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec", "MonitorSpec", "ParticleSpec",
     "Setup",
     "TrapSpec", "VacuumSpec", "display", "load_setup", "parse_quantity", "setup_from_dict",
 ]
