@@ -13,7 +13,6 @@ import time
 from pathlib import Path
 
 import pytest
-
 from lab_server import ROOT, LabServer, server_profile
 
 TINY = ROOT / "tests" / "data" / "tiny-campaign.toml"

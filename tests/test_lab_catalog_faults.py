@@ -13,7 +13,6 @@ import threading
 import time
 
 import pytest
-
 from lab_server import CONFIG, ROOT, LabServer, free_port, server_profile
 
 TINY = ROOT / "tests" / "data" / "tiny-campaign.toml"

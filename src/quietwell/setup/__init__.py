@@ -1,12 +1,12 @@
 """Setup descriptions (``profiles/<name>/setup.toml``): what the apparatus is and its limits."""
 
 from ._schema import (
+    DataSpec,
     DetectorSpec,
     ElectrodeSpec,
     GaugeSpec,
     LimitSpec,
     MonitorSpec,
-    DataSpec,
     ParticleSpec,
     Setup,
     TrapSpec,
@@ -17,7 +17,7 @@ from ._schema import (
 from ._units import KINDS, display, parse_quantity
 
 __all__ = [
-    "DataSpec", "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec", "MonitorSpec", "ParticleSpec",
-    "Setup",
+    "DataSpec", "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec",
+    "MonitorSpec", "ParticleSpec", "Setup",
     "TrapSpec", "VacuumSpec", "display", "load_setup", "parse_quantity", "setup_from_dict",
 ]
