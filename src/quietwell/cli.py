@@ -120,12 +120,22 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"{prog}: interrupted", file=sys.stderr)
         return 130
     except Exception as exc:  # noqa: BLE001 - the command never shows a traceback
+        if _is_http_error(exc):  # the catalog server's answers and silences: one line
+            from quietwell.store import explain_http_error
+
+            print(f"{prog}: error: {explain_http_error(exc)}", file=sys.stderr)
+            return EXIT_BAD_INPUT
         print(
             f"{prog}: internal error: {type(exc).__name__}: {_one_line(exc)}; "
             "please report it with the command line you used",
             file=sys.stderr,
         )
         return EXIT_INTERNAL
+
+
+def _is_http_error(exc: BaseException) -> bool:
+    httpx = sys.modules.get("httpx")  # loaded only if a catalog was used
+    return httpx is not None and isinstance(exc, httpx.HTTPError)
 
 
 def _one_line(exc: BaseException) -> str:
@@ -192,11 +202,13 @@ def _recover(args: argparse.Namespace) -> int:
 
     from quietwell import InputError
     from quietwell.store import EmbeddedStore
+    from quietwell.store._server import store_for_data_dir
 
-    if not (Path(args.data_dir) / "catalog" / "catalog.db").exists():
+    server_store = store_for_data_dir(args.data_dir)  # runs that went to the lab's server
+    if server_store is None and not (Path(args.data_dir) / "catalog" / "catalog.db").exists():
         raise InputError(f"--data-dir {args.data_dir} is not a quietwell data directory (no "
                          "catalog/catalog.db); give the directory a run wrote to")
-    with EmbeddedStore(args.data_dir) as store:
+    with server_store or EmbeddedStore(args.data_dir) as store:
         uids = store.recover()
     print(f"recovered {len(uids)} run(s)" + (": " + ", ".join(uids) if uids else ""))
     return EXIT_OK
@@ -371,6 +383,56 @@ def _run(args: argparse.Namespace) -> int:
     print(f"campaign {out.campaign_id} completed: {len(out.uids)} steps; ledger and log in "
           f"{out.folder}")
     return EXIT_OK
+
+
+# --------------------------------------------------------------------------
+# lab-catalog: the lab's shared tiled server on PostgreSQL
+
+
+@subcommand("lab-catalog", help="set up and start the lab's shared catalog server "
+            "(PostgreSQL; see deploy/)")
+def _lab_arguments(parser: argparse.ArgumentParser) -> None:
+    sub = parser.add_subparsers(dest="action", metavar="ACTION", parser_class=_Parser)
+    sub.required = True
+    init = sub.add_parser("init", help="create the role and databases on a PostgreSQL server "
+                          "and initialise the catalog")
+    init.add_argument("--admin-uri", required=True, metavar="URI",
+                      help="postgresql://ADMIN@HOST:PORT/postgres (password from PGPASSWORD "
+                           "or ~/.pgpass)")
+    init.add_argument("--role", default="quietwell", help="database role (default quietwell)")
+    init.add_argument("--catalog-db", default="quietwell_catalog", metavar="NAME")
+    init.add_argument("--tables-db", default="quietwell_tables", metavar="NAME")
+    init.add_argument("--password-env", default="QUIETWELL_LAB_DB_PASSWORD", metavar="NAME",
+                      help="environment variable with the role's password")
+    serve = sub.add_parser("serve", help="check the configuration, then run the server")
+    serve.add_argument("--config", required=True, metavar="FILE",
+                       help="tiled configuration (deploy/lab-catalog.yml)")
+    serve.add_argument("--host", default="127.0.0.1")
+    serve.add_argument("--port", type=int, default=8000)
+    check = sub.add_parser("check", help="check the configuration and its environment only")
+    check.add_argument("--config", required=True, metavar="FILE")
+
+
+@_lab_arguments.runner
+def _lab(args: argparse.Namespace) -> int:
+    from quietwell.store import _lab as lab
+
+    if args.action == "init":
+        made, catalog, tables = lab.init_lab_catalog(
+            args.admin_uri, role=args.role, catalog_db=args.catalog_db,
+            tables_db=args.tables_db, password_env=args.password_env)
+        print(f"created: {', '.join(made) or 'nothing (all existed)'}; catalog initialised")
+        print(f"PGUSER={args.role}")
+        print(f"QUIETWELL_LAB_CATALOG_DB={catalog}")
+        print(f"QUIETWELL_LAB_TABLES_DB={tables}")
+        return EXIT_OK
+    if args.action == "check":
+        found = lab.check_lab_config(args.config)
+        print(f"{args.config}: ok (catalog {found['catalog']}, tables {found['tables']}, "
+              f"raw {', '.join(found['raw'])}, key from ${found['key_var']})")
+        return EXIT_OK
+    lab.serve_lab_catalog(args.config, host=args.host, port=args.port)
+    return EXIT_INTERNAL  # not reached: the process became the server
 
 
 if __name__ == "__main__":

@@ -1,6 +1,7 @@
 """One entry point that builds a working session from a setup profile.
 
-``open_session(profile, data_dir)`` loads the setup, starts the embedded store, makes
+``open_session(profile, data_dir)`` loads the setup, opens its store (the embedded one,
+or the lab's catalog server if the profile's ``[data]`` says so), makes
 the RunEngine (``call_returns_result=True``, no SIGINT handler of its own: a campaign
 handles signals itself), subscribes the store's writer and connects the apparatus.
 The campaign runner, the demo, the tests and the benches all use it, so there is one
@@ -29,7 +30,8 @@ class Session:
         The profile folder (or setup file) the setup came from.
     RE : bluesky.RunEngine
     apparatus : quietwell.plans.Apparatus
-    store : quietwell.store.EmbeddedStore
+    store : quietwell.store.EmbeddedStore or quietwell.store.ServerStore
+        As the profile's ``[data]`` says (embedded by default).
     data_dir : Path
     stop_reason : str
         If set when a run ends with ``exit_status`` ``abort`` or ``fail``, it becomes
@@ -89,7 +91,7 @@ def open_session(profile: str | Path | Setup, data_dir: str | Path, *,
 
     from ._profile import apparatus_builder, find_profile
     from .plans import connect_apparatus
-    from .store import EmbeddedStore
+    from .store import open_store
 
     if isinstance(profile, Setup):
         setup, where = profile, Path(profile.source)
@@ -97,7 +99,7 @@ def open_session(profile: str | Path | Setup, data_dir: str | Path, *,
         where = find_profile(profile)
         setup = load_setup(where)
     build = apparatus_builder(setup)  # refused before the store starts
-    store = EmbeddedStore(data_dir, batch_size=batch_size).open()
+    store = open_store(setup, data_dir, batch_size=batch_size)  # [data] of the profile
     try:
         RE = RunEngine({}, context_managers=[], call_returns_result=True)
         app = build(setup, store.raw_dir)

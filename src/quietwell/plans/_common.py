@@ -80,6 +80,7 @@ def run_metadata(app: Apparatus, plan_name: str, plan_args: dict, md: dict | Non
         "setup": app.setup.name,
         "setup_description": app.setup.as_dict(),
         "setup_sha256": app.setup.sha256,
+        "particle": app.setup.particle_id or f"{app.setup.name}-unnamed",
         "quietwell_version": __version__,
         "hints": {"dimensions": dimensions or [(["time"], "primary")]},
     }

@@ -1,6 +1,7 @@
 """Setup descriptions (``profiles/<name>/setup.toml``): what the apparatus is and its limits."""
 
 from ._schema import (
+    DataSpec,
     DetectorSpec,
     ElectrodeSpec,
     GaugeSpec,
@@ -16,7 +17,7 @@ from ._schema import (
 from ._units import KINDS, display, parse_quantity
 
 __all__ = [
-    "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec", "MonitorSpec", "ParticleSpec",
-    "Setup",
+    "DataSpec", "DetectorSpec", "ElectrodeSpec", "GaugeSpec", "KINDS", "LimitSpec",
+    "MonitorSpec", "ParticleSpec", "Setup",
     "TrapSpec", "VacuumSpec", "display", "load_setup", "parse_quantity", "setup_from_dict",
 ]

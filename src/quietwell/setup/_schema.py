@@ -29,6 +29,7 @@ __all__ = [
     "VacuumSpec",
     "LimitSpec",
     "MonitorSpec",
+    "DataSpec",
     "Setup",
     "load_setup",
     "setup_from_dict",
@@ -150,8 +151,40 @@ class MonitorSpec:
 
 
 @dataclass(frozen=True)
+class DataSpec:
+    """Where the setup's runs go (``[data]``; not part of the setup's sha256).
+
+    ``store``: ``embedded`` (default: a catalog of its own in the data directory) or
+    ``server`` (the lab's shared tiled server at ``uri``). ``api_key_env`` names the
+    environment variable that holds the server's API key (the key itself is never
+    written into a profile). ``raw_dir``: the local folder the setup writes its HDF5
+    traces into (default: ``DATA_DIR/raw``); ``server_raw_dir``: the same folder as
+    the server sees it (default: the same path); ``raw_transfer``: ``shared`` (the
+    server reads the folder itself, e.g. a network mount) or ``synced`` (a sync tool
+    copies it there later: until a file arrives, its run is listed but reading its
+    traces fails). ``allow_unauthenticated``: write to a server that asks for no key.
+    ``supersedes``: the first 12 hex digits of the setup sha256 this profile replaces
+    under the same setup name in the shared catalog (see the README, "Lab deployment").
+    """
+
+    store: str = "embedded"
+    uri: str = ""
+    api_key_env: str = ""
+    raw_dir: str = ""
+    server_raw_dir: str = ""
+    raw_transfer: str = "shared"
+    allow_unauthenticated: bool = False
+    supersedes: str = ""
+
+
+@dataclass(frozen=True)
 class Setup:
-    """A parsed setup description (SI units throughout)."""
+    """A parsed setup description (SI units throughout).
+
+    ``particle_id`` names the trapped particle (``[particle] id``; recorded as
+    ``particle`` in every run) and ``data`` says where runs go (``[data]``); neither is
+    part of :meth:`as_dict` or :attr:`sha256`, which describe the apparatus only.
+    """
 
     name: str
     lab: str
@@ -167,11 +200,14 @@ class Setup:
     seed: int | None = None
     monitors: MonitorSpec = field(default_factory=MonitorSpec)
     source: str = field(default="<dict>", compare=False)
+    particle_id: str = field(default="", compare=False)
+    data: DataSpec = field(default_factory=DataSpec, compare=False)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain-JSON form (SI values), as stored in every run's start document."""
         d = asdict(self)
-        d.pop("source")
+        for key in ("source", "particle_id", "data"):
+            d.pop(key)
         return json.loads(json.dumps(d))
 
     @property
@@ -185,7 +221,7 @@ class Setup:
 
 _KNOWN_KEYS: dict[str, tuple[str, ...]] = {
     "setup": ("name", "lab", "kind", "description", "temperature", "seed"),
-    "particle": ("radius", "density", "charge_e"),
+    "particle": ("id", "radius", "density", "charge_e"),
     "trap": ("wavelength", "waist", "power", "frequencies", "loss_pressure", "trap_depth"),
     "detector": ("sample_rate", "record_length", "calibration", "imprecision", "crosstalk",
                  "adc_range", "adc_bits", "heterodyne_carrier", "lo_sign"),
@@ -198,6 +234,8 @@ _KNOWN_KEYS: dict[str, tuple[str, ...]] = {
     "limits": ("laser_power_max", "electrode_voltage_max", "feedback_gain_max",
                "modulation_depth_max", "pressure_min", "pressure_max", "sample_rate_max",
                "record_length_max"),
+    "data": ("store", "uri", "api_key_env", "raw_dir", "server_raw_dir", "raw_transfer",
+             "allow_unauthenticated", "supersedes"),
 }
 
 
@@ -271,7 +309,7 @@ class _Section:
 def setup_from_dict(data: dict[str, Any], source: str = "<dict>") -> Setup:
     """Build a :class:`Setup` from the parsed TOML ``data``; ``source`` names it in errors."""
     known = ("setup", "particle", "trap", "detector", "electrodes", "vacuum", "limits")
-    optional = ("monitors",)
+    optional = ("monitors", "data")
     for name in data:
         if name in optional:
             continue
@@ -394,6 +432,11 @@ def setup_from_dict(data: dict[str, Any], source: str = "<dict>") -> Setup:
                                        default=d0.poll_interval),
     )
     mon_sec.finish()
+    data_spec = _data_spec(_Section(data.get("data", {}), "data", source))
+    particle_id = p.text("id", default=f"{s.text('name')}-unnamed")
+    if not particle_id.strip() or len(particle_id) > 200:
+        raise InputError(f"{p.where('id')} = {particle_id!r}: expected a short non-empty name "
+                         "of the trapped particle; fix the file")
     setup = Setup(
         name=s.text("name"),
         lab=s.text("lab", default=""),
@@ -409,10 +452,60 @@ def setup_from_dict(data: dict[str, Any], source: str = "<dict>") -> Setup:
         seed=seed,
         monitors=monitors,
         source=source,
+        particle_id=particle_id,
+        data=data_spec,
     )
     for sec in sections.values():
         sec.finish()
     return setup
+
+
+def _data_spec(sec: _Section) -> DataSpec:
+    store = sec.text("store", default="embedded", choices=("embedded", "server"))
+    uri = sec.text("uri", default="")
+    key_env = sec.text("api_key_env", default="")
+    allow = sec.raw("allow_unauthenticated", False)
+    if not isinstance(allow, bool):
+        raise InputError(f"{sec.where('allow_unauthenticated')} = {allow!r}: expected true or "
+                         "false; fix the file")
+    spec = DataSpec(
+        store=store, uri=uri.rstrip("/"), api_key_env=key_env,
+        raw_dir=sec.text("raw_dir", default=""),
+        server_raw_dir=sec.text("server_raw_dir", default=""),
+        raw_transfer=sec.text("raw_transfer", default="shared", choices=("shared", "synced")),
+        allow_unauthenticated=allow,
+        supersedes=sec.text("supersedes", default="").lower(),
+    )
+    sec.finish()
+    if store == "embedded":
+        extra = [k for k in sec.data if k != "store"]
+        if extra:
+            raise InputError(f"{sec.where(extra[0])}: only used with store = \"server\"; add "
+                             "store = \"server\" or remove the key")
+        return spec
+    if not uri.startswith(("http://", "https://")):
+        raise InputError(f"{sec.where('uri')} = {uri!r}: expected the catalog server's address, "
+                         "http://HOST:PORT or https://HOST:PORT; fix the file")
+    if "@" in uri.split("//", 1)[1].split("/", 1)[0] or "api_key" in uri:
+        raise InputError(f"{sec.where('uri')}: holds a credential; write only the address and "
+                         "name the key's environment variable in api_key_env")
+    if key_env and not key_env.replace("_", "").isalnum():
+        raise InputError(f"{sec.where('api_key_env')} = {key_env!r}: expected the NAME of an "
+                         "environment variable (letters, digits, _), not the key; fix the file")
+    if not key_env and not allow:
+        raise InputError(f"{sec.where('api_key_env')} is missing: name the environment variable "
+                         "that holds the server's API key (or, for a server without "
+                         "authentication, set allow_unauthenticated = true)")
+    if spec.supersedes and (len(spec.supersedes) < 12 or any(
+            c not in "0123456789abcdef" for c in spec.supersedes)):
+        raise InputError(f"{sec.where('supersedes')} = {spec.supersedes!r}: expected at least "
+                         "12 hex digits of the setup sha256 this profile replaces; fix the file")
+    for key in ("raw_dir", "server_raw_dir"):
+        value = getattr(spec, key)
+        if value and not Path(value).expanduser().is_absolute():
+            raise InputError(f"{sec.where(key)} = {value!r}: expected an absolute path; "
+                             "fix the file")
+    return spec
 
 
 def load_setup(path: str | Path) -> Setup:

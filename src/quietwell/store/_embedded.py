@@ -94,8 +94,9 @@ class EmbeddedStore:
         from tiled.client import from_uri
 
         journal = Journal(self.journal_dir)
-        self._server = _CatalogProcess(self.catalog_dir, self.raw_dir, self.backup_dir,
-                                       self.batch_size, on_done=journal.finish)
+        self._server = _CatalogProcess(
+            self.catalog_dir, [str(self.catalog_dir), str(self.raw_dir), str(self.backup_dir),
+                               str(self.batch_size)], on_done=journal.finish)
         self._uri = self._server.uri
         atexit.register(self.close)
         self._client = from_uri(self._uri)
@@ -191,8 +192,8 @@ class _CatalogProcess:
     ``failed`` keeps the reason until :meth:`wait` reports it.
     """
 
-    def __init__(self, catalog_dir: Path, raw_dir: Path, backup_dir: Path, batch_size: int,
-                 on_done: Callable[[str], None]) -> None:
+    def __init__(self, catalog_dir: Path, args: list[str], on_done: Callable[[str], None],
+                 env: dict[str, str] | None = None) -> None:
         self.log_path = catalog_dir / "server.log"
         self._on_done = on_done
         self._cond = threading.Condition()
@@ -201,10 +202,9 @@ class _CatalogProcess:
         self._ended = False
         with open(self.log_path, "ab") as log:
             self.proc = subprocess.Popen(
-                [sys.executable, "-m", "quietwell.store._serve", str(catalog_dir),
-                 str(raw_dir), str(backup_dir), str(batch_size), str(os.getpid())],
+                [sys.executable, "-m", "quietwell.store._serve", *args, str(os.getpid())],
                 stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=log, text=True,
-                env={**os.environ, "PYTHONUNBUFFERED": "1"},
+                env={**os.environ, **(env or {}), "PYTHONUNBUFFERED": "1"},
             )
         self._uri: queue.Queue = queue.Queue()
         self._reader = threading.Thread(target=self._read, name="quietwell-catalog-replies",
@@ -216,8 +216,11 @@ class _CatalogProcess:
             self.uri = None
         if self.uri is None:
             self.stop()
+            tail = self._log_tail()
+            if tail.startswith("quietwell: "):  # the process's own one-line diagnosis
+                raise QuietwellError(tail.removeprefix("quietwell: "))
             raise QuietwellError(f"the catalog process ended or did not answer "
-                                 f"({self._log_tail()}); see {self.log_path}")
+                                 f"({tail}); see {self.log_path}")
 
     def _log_tail(self) -> str:
         tail = self.log_path.read_text(errors="replace").strip().splitlines()[-1:]
@@ -322,14 +325,20 @@ class _StoreWriter:
 _OPEN: dict[Path, EmbeddedStore] = {}
 
 
-def open_catalog(dir_or_uri: str | Path) -> Any:
+def open_catalog(dir_or_uri: str | Path, *, api_key_env: str | None = None) -> Any:
     """The tiled client of a quietwell store.
 
     Parameters
     ----------
     dir_or_uri : str or Path
         A data directory written by quietwell (an embedded server is started on it and
-        stopped at exit), or the URI of a running tiled server (``http://...``).
+        stopped at exit; a data directory whose runs went to the lab's catalog server,
+        see ``store.json`` in it, opens that server), or the URI of a running tiled
+        server (``http://...``).
+    api_key_env : str, optional
+        Name of the environment variable with the server's API key (default: the one
+        the data directory's ``store.json`` names, else ``QUIETWELL_API_KEY``; an
+        unset variable means no key).
 
     Returns
     -------
@@ -337,11 +346,21 @@ def open_catalog(dir_or_uri: str | Path) -> Any:
         ``client[uid]["primary"]``, ``["fits"]``, ``["summary"]`` of each run.
     """
     text = str(dir_or_uri)
+    path = Path(text).expanduser().resolve()
+    if not text.startswith(("http://", "https://")) and (path / "store.json").exists():
+        info = json.loads((path / "store.json").read_text(encoding="utf-8"))
+        text = info["uri"]
+        api_key_env = api_key_env or info.get("api_key_env") or None
     if text.startswith(("http://", "https://")):
         from tiled.client import from_uri
 
-        return from_uri(text)
-    path = Path(text).expanduser().resolve()
+        key = os.environ.get(api_key_env or "QUIETWELL_API_KEY") or None
+        try:
+            return from_uri(text, api_key=key)
+        except Exception as exc:  # noqa: BLE001 - tiled's client errors: one line
+            from ._server import explain_http_error
+
+            raise QuietwellError(f"{text}: {explain_http_error(exc)}") from None
     if not (path / "catalog" / "catalog.db").exists():
         raise InputError(f"{path} is not a quietwell data directory (no catalog/catalog.db); "
                          "give the --data-dir of a run, or a tiled server URI")

@@ -89,6 +89,8 @@ def _lock_catalog(catalog_dir: str):
 
 
 def main(argv: list[str]) -> int:
+    if argv[:1] == ["--remote"]:
+        return remote_main(argv[1:])
     if len(argv) != 5 or not argv[4].isdigit():
         print("usage: python -m quietwell.store._serve CATALOG_DIR RAW_DIR BACKUP_DIR BATCH "
               "PARENT_PID", file=sys.stderr)
@@ -169,6 +171,179 @@ def main(argv: list[str]) -> int:
             replies.close()
         except OSError:
             pass
+        return 1
+    return 0
+
+
+# --- the lab's server instead of an embedded one ---------------------------------------
+
+#: Seconds, once the parent has closed the pipe, to wait for an unreachable server
+#: before the runs still to write are reported failed (their journals keep them).
+_CLOSING_OUTAGE_S = float(os.environ.get("QUIETWELL_CATALOG_OUTAGE_WAIT", "60"))
+#: Seconds between attempts to reach a server that stopped answering.
+_OUTAGE_POLL_S = 2.0
+
+
+def map_raw(name: str, doc: dict, local: str, server: str) -> dict:
+    """``doc`` with a stream resource's file under folder ``local`` moved to ``server``."""
+    if name != "stream_resource" or local == server:
+        return doc
+    uri = str(doc.get("uri", ""))
+    for scheme in ("file://localhost", "file://"):
+        if uri.startswith(scheme):
+            path = uri[len(scheme):]
+            head = local.rstrip("/") + "/"
+            if path.startswith(head):
+                return {**doc, "uri": scheme + server.rstrip("/") + "/" + path[len(head):]}
+            break
+    return doc
+
+
+def remote_main(argv: list[str]) -> int:
+    """``--remote CATALOG_DIR URI KEY_ENV BATCH RAW_LOCAL RAW_SERVER PARENT_PID``.
+
+    The same protocol on standard input and output as the embedded mode, with the lab's
+    tiled server at URI (its API key in the environment variable KEY_ENV, or "-" for
+    none) instead of a server of its own. The documents of the run in hand are kept
+    until its stop is written: if the server stops answering, the process waits for
+    it (the acquisition goes on; its journal is the durable copy), then deletes the
+    partial run there and writes the whole run again. Stream resources under
+    RAW_LOCAL are registered under RAW_SERVER (the folder as the server sees it).
+    """
+    if len(argv) != 7 or not argv[6].isdigit():
+        print("usage: python -m quietwell.store._serve --remote CATALOG_DIR URI KEY_ENV BATCH "
+              "RAW_LOCAL RAW_SERVER PARENT_PID", file=sys.stderr)
+        return 2
+    catalog_dir, uri, key_env, batch, raw_local, raw_server, parent = argv
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    lines: queue.SimpleQueue = queue.SimpleQueue()
+    orphaned, closing = threading.Event(), threading.Event()
+
+    def parent_died() -> None:
+        orphaned.set()
+        lines.put(None)
+        time.sleep(_ORPHAN_GRACE_S)
+        os._exit(1)
+
+    follow_parent(int(parent), parent_died)
+    lock = _lock_catalog(catalog_dir)
+    if lock is None:
+        return 3
+    replies = os.fdopen(os.dup(1), "w")
+    os.dup2(2, 1)
+    # Fail fast inside tiled's client: this process does its own waiting for the server.
+    os.environ.setdefault("TILED_RETRY_ATTEMPTS", "2")
+    os.environ.setdefault("TILED_RETRY_TIMEOUT", "5")
+    import httpx
+    from bluesky_tiled_plugins import TiledWriter
+    from tiled.client import from_uri
+
+    api_key = os.environ.get(key_env) if key_env != "-" else None
+
+    def mapped(name: str, doc: dict) -> dict:
+        return map_raw(name, doc, raw_local, raw_server)
+
+    def reply(text: str) -> None:
+        try:
+            replies.write(text + "\n")
+            replies.flush()
+        except OSError:
+            orphaned.set()
+
+    def log(text: str) -> None:
+        print(f"{time.strftime('%Y-%m-%d %H:%M:%S')} quietwell catalog: {text}",
+              file=sys.stderr, flush=True)
+
+    def answers() -> bool:
+        try:
+            r = httpx.get(f"{uri}/api/v1/", timeout=5.0)
+            return r.status_code < 500
+        except httpx.HTTPError:
+            return False
+
+    try:
+        client = from_uri(uri, api_key=api_key)
+    except Exception as exc:  # noqa: BLE001 - the parent checked the server just before
+        print(f"quietwell: the catalog server at {uri} could not be opened "
+              f"({type(exc).__name__}); check it and start again", file=sys.stderr, flush=True)
+        return 1
+    new_writer = lambda: TiledWriter(client, batch_size=int(batch))  # noqa: E731
+    writer = new_writer()
+    reply(f"uri {uri}")
+    failed: dict[str, str] = {}
+    held: dict[str, list] = {}  # the documents of the runs not yet stopped
+    gave_up = False
+
+    def read_input() -> None:
+        for text in sys.stdin:
+            lines.put(text)
+        closing.set()
+        lines.put(None)
+
+    threading.Thread(target=read_input, name="quietwell-catalog-input", daemon=True).start()
+
+    def wait_for_server() -> bool:
+        nonlocal gave_up
+        log(f"the server {uri} does not answer; waiting for it (the runs are kept in the "
+            "journal)")
+        closed_at = None
+        while not orphaned.is_set():
+            if answers():
+                log(f"the server {uri} answers again; writing the held runs")
+                return True
+            if closing.is_set():
+                closed_at = closed_at or time.monotonic()
+                if time.monotonic() - closed_at > _CLOSING_OUTAGE_S:
+                    gave_up = True
+                    log(f"gave up waiting for {uri} after {_CLOSING_OUTAGE_S:g} s at close")
+                    return False
+            time.sleep(_OUTAGE_POLL_S)
+        return False
+
+    def write(uid: str, name: str, doc: dict) -> None:
+        nonlocal writer
+        try:
+            writer(name, doc)
+            return
+        except Exception as exc:  # noqa: BLE001 - sorted out below
+            outage = isinstance(exc, httpx.TransportError) or not answers()
+            if not outage:
+                failed[uid] = " ".join(repr(exc).split())
+                return
+        while True:  # the server went away: wait, then write the whole run again
+            if gave_up or not wait_for_server():
+                failed[uid] = "the catalog server did not answer"
+                return
+            writer = new_writer()
+            try:
+                if uid in client:
+                    client.delete_contents(uid, recursive=True, external_only=False)
+                for n, d in held.get(uid, []):
+                    writer(n, d)
+                return
+            except Exception as exc:  # noqa: BLE001
+                if isinstance(exc, httpx.TransportError) or not answers():
+                    continue
+                failed[uid] = " ".join(repr(exc).split())
+                return
+
+    while (line := lines.get()) is not None and not orphaned.is_set():
+        uid, _, payload = line.partition("\t")
+        name, doc = json.loads(payload)
+        doc = mapped(name, doc)
+        if uid:
+            held.setdefault(uid, []).append((name, doc))
+        if uid not in failed:
+            if gave_up:
+                failed[uid] = "the catalog server did not answer"
+            else:
+                write(uid, name, doc)
+        if name == "stop":
+            held.pop(uid, None)
+            reason = failed.pop(uid, None)
+            reply(f"done {uid}" if reason is None else f"failed {uid} {reason}")
+    if orphaned.is_set():
         return 1
     return 0
 
