@@ -224,15 +224,16 @@ def campaign_plan_for(session: Any):
 
     def campaign(path: str, resume: bool = True, campaign_id: str = "",
                  particle_reloaded: bool = False):
-        """Run the campaign file ``path`` on this setup, checked first (its steps, the
-        setup's limits), with the same ledger as ``quietwell run``.
+        """Run a campaign file on this setup, checked first, with a ledger; resumable.
 
-        Safe to queue again after an interruption: with ``resume`` the latest unfinished
-        campaign of the same file on this setup continues (completed steps are skipped,
-        the interrupted one is redone); ``resume=False`` starts a new campaign;
+        ``path``: the campaign file (absolute, or relative to the folder the queue
+        server was started in), checked against the setup's limits before anything
+        moves; the runs and the ledger are those of ``quietwell run``. Safe to queue
+        again after an interruption: with ``resume`` the latest unfinished campaign of
+        the same file on this setup continues (completed steps are skipped, the
+        interrupted one is redone); ``resume=False`` starts a new campaign;
         ``campaign_id`` continues that campaign; ``particle_reloaded`` after a particle
-        loss, once a particle is trapped again. ``path``: absolute, or relative to the
-        folder the queue server was started in.
+        loss, once a particle is trapped again.
         """
         outcome = yield from campaign_plan(session, path, resume=resume,
                                            campaign_id=campaign_id,
@@ -240,6 +241,10 @@ def campaign_plan_for(session: Any):
         _wait_store(session)
         return {"campaign_id": outcome.campaign_id, "runs": dict(outcome.uids)}
 
+    # real types, not the strings of postponed annotations: the queue server converts
+    # and checks each parameter of a queued item by its annotation
+    campaign.__annotations__ = {"path": str, "resume": bool, "campaign_id": str,
+                                "particle_reloaded": bool}
     return campaign
 
 
