@@ -238,6 +238,9 @@ def test_queued_campaign_runs_and_resumes_after_the_manager_is_killed(startup, m
     assert "\n" not in msg.strip() and "bad.toml" in msg and "records" in msg, msg
     assert "Traceback" not in manager.log.read_text()
     assert not campaign_dirs(data)
+    # the queue server puts a failed item back at the front of the queue and stops
+    assert api.status()["items_in_queue"] == 1
+    api.queue_clear()
 
     # the campaign, queued, killed mid-step with the whole manager
     api.item_add(BPlan("campaign", str(SHORT)))
@@ -247,7 +250,7 @@ def test_queued_campaign_runs_and_resumes_after_the_manager_is_killed(startup, m
         entries = _ledger(data) if campaign_dirs(data) else []
         if any(e["event"] == "run" and e["step"] == 1 for e in entries):
             break
-        assert time.monotonic() - t0 < 300, manager.log.read_text()
+        assert time.monotonic() - t0 < 120, manager.log.read_text()
         time.sleep(0.1)
     time.sleep(1.0)  # a record or two into the step
     api.close()
@@ -260,7 +263,7 @@ def test_queued_campaign_runs_and_resumes_after_the_manager_is_killed(startup, m
     assert killed["name"] == "campaign" and killed["args"] == [str(SHORT)]
     assert killed["result"]["exit_status"] == "unknown"  # not completed: it must be re-run
     # re-queue the interrupted item as it was, run it: the completed step is skipped
-    api.item_add(BPlan(killed["name"], *killed["args"], **killed["kwargs"]))
+    api.item_add(BPlan(killed["name"], *killed["args"], **killed.get("kwargs", {})))
     _open_env(api)
     item = _run_item(api)
     assert item["result"]["exit_status"] == "completed", item["result"]
