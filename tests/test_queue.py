@@ -294,3 +294,55 @@ def test_queued_campaign_runs_and_resumes_after_the_manager_is_killed(startup, m
         close_catalog(data)
     info = json.loads((st / "quietwell-queue.json").read_text())
     assert info["setup"] == "amber" and Path(info["data_dir"]) == data.resolve()
+
+
+@pytest.mark.slow
+def test_campaign_plan_aborted_in_its_runengine_resumes_when_run_again(tmp_path):
+    """The queue's re_pause + re_abort, as the worker does them (RE.request_pause from
+    another thread, then RE.abort): the step's run is ended and marked, the ledger says
+    the queue stopped it, and running the same plan again redoes only that step."""
+    import threading
+
+    from bluesky.utils import RunEngineInterrupted
+
+    from quietwell.campaign import campaign_plan
+    from quietwell.session import open_session
+
+    data = tmp_path / "data"
+    s = open_session("amber", data)
+    try:
+        def pause_in_step_1() -> None:
+            t0 = time.monotonic()
+            while time.monotonic() - t0 < 120:
+                d = campaign_dirs(data)
+                if d and any(e["event"] == "run" and e["step"] == 1
+                             for e in read_ledger(d[0] / "ledger.jsonl")):
+                    time.sleep(0.5)
+                    s.RE.request_pause(defer=False)
+                    return
+                time.sleep(0.05)
+
+        threading.Thread(target=pause_in_step_1, daemon=True).start()
+        with pytest.raises(RunEngineInterrupted):
+            s.RE(campaign_plan(s, str(SHORT)))
+        assert s.RE.state == "paused"
+        s.RE.abort("from the test")  # ends the run: RequestAbort thrown into the plan
+        entries = _ledger(data)
+        failed = [e for e in entries if e["event"] == "failed"]
+        assert [(e["step"], e["exit_status"]) for e in failed] == [(1, "abort")]
+        assert entries[-1]["event"] == "end" and entries[-1]["status"] == "stopped"
+        res = s.RE(campaign_plan(s, str(SHORT)))
+        assert res.exit_status == "success"
+        assert sorted(res.plan_result.uids) == ["gains", "pumpdown", "thermal"]
+    finally:
+        s.close()
+    entries = _ledger(data)
+    assert [e["step"] for e in entries if e["event"] == "attempt"] == [0, 1, 1, 2]
+    assert entries[-1]["status"] == "completed"
+    runs = _catalog_runs(data, entries[0]["campaign_id"])
+    try:
+        assert all(len(_complete(rs)) == 1 for rs in runs.values()) and len(runs[1]) == 2
+        (cut,) = [r for r in runs[1] if r not in _complete(runs[1])]
+        assert cut.metadata["stop"]["exit_status"] == "abort"
+    finally:
+        close_catalog(data)
