@@ -435,6 +435,84 @@ def _lab(args: argparse.Namespace) -> int:
     return EXIT_INTERNAL  # not reached: the process became the server
 
 
+# --------------------------------------------------------------------------
+# queue: bluesky's queue server for a setup
+
+@subcommand("queue-startup", help="write a setup's startup directory for bluesky's queue server")
+def _queue_startup_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("profile", metavar="PROFILE", help="setup profile name or folder")
+    parser.add_argument("--data-dir", required=True, metavar="DIR",
+                        help="data directory the queued campaigns write to")
+    parser.add_argument("-o", "--output", required=True, metavar="STARTUP_DIR",
+                        help="folder for the startup scripts (created if missing)")
+
+
+@_queue_startup_arguments.runner
+def _queue_startup(args: argparse.Namespace) -> int:
+    from quietwell.queue import serve_command, write_startup_dir
+
+    out = write_startup_dir(args.profile, args.data_dir, args.output)
+    print(f"startup directory written: {out}\nstart the queue server with: quietwell "
+          f"queue-serve {out}\n(that is: {' '.join(serve_command(out))})")
+    return EXIT_OK
+
+
+@subcommand("queue-serve", help="start bluesky's queue server (RE manager) for a startup directory")
+def _queue_serve_arguments(parser: argparse.ArgumentParser) -> None:
+    from quietwell.queue import DEFAULT_CONTROL_ADDR, DEFAULT_INFO_ADDR, DEFAULT_REDIS_ADDR
+
+    parser.add_argument("startup_dir", metavar="STARTUP_DIR",
+                        help="folder written by quietwell queue-startup")
+    parser.add_argument("--redis-addr", default=DEFAULT_REDIS_ADDR, metavar="HOST:PORT",
+                        help=f"Redis that keeps the queue and history (default {DEFAULT_REDIS_ADDR})")
+    parser.add_argument("--redis-prefix", default="", metavar="NAME",
+                        help="prefix of the queue's Redis keys (default quietwell_<setup>)")
+    parser.add_argument("--control-addr", default=DEFAULT_CONTROL_ADDR, metavar="ZMQ",
+                        help=f"control address (default {DEFAULT_CONTROL_ADDR})")
+    parser.add_argument("--info-addr", default=DEFAULT_INFO_ADDR, metavar="ZMQ",
+                        help=f"console output address (default {DEFAULT_INFO_ADDR})")
+
+
+@_queue_serve_arguments.runner
+def _queue_serve(args: argparse.Namespace) -> int:
+    from quietwell.queue import exec_manager, redis_answers, serve_command
+
+    argv = serve_command(args.startup_dir, redis_addr=args.redis_addr,
+                         redis_prefix=args.redis_prefix, control_addr=args.control_addr,
+                         info_addr=args.info_addr)
+    redis_answers(args.redis_addr)
+    exec_manager(argv)
+    return EXIT_OK  # pragma: no cover - exec does not return
+
+
+@subcommand("queue-add", help="check a campaign on a setup, then add it to the queue server")
+def _queue_add_arguments(parser: argparse.ArgumentParser) -> None:
+    from quietwell.queue import DEFAULT_CONTROL_ADDR
+
+    parser.add_argument("campaign", metavar="CAMPAIGN", help="campaign file (.toml)")
+    parser.add_argument("--setup", required=True, metavar="PROFILE",
+                        help="setup profile of the queue server (for the check)")
+    parser.add_argument("--control-addr", default=DEFAULT_CONTROL_ADDR, metavar="ZMQ",
+                        help=f"the queue server's control address (default {DEFAULT_CONTROL_ADDR})")
+    parser.add_argument("--new", action="store_true",
+                        help="start a new campaign even if one of this file did not complete")
+    parser.add_argument("--start", action="store_true",
+                        help="open the environment if needed and start the queue")
+
+
+@_queue_add_arguments.runner
+def _queue_add(args: argparse.Namespace) -> int:
+    from quietwell.campaign import CAUTIONS
+    from quietwell.queue import add_campaign
+
+    item = add_campaign(args.campaign, args.setup, control_addr=args.control_addr,
+                        resume=not args.new, start=args.start)
+    print(CAUTIONS, file=sys.stderr)
+    print(f"queued: campaign({item['args'][0]!r}) as item {item['item_uid']}"
+          + (" and the queue started" if args.start else ""))
+    return EXIT_OK
+
+
 if __name__ == "__main__":
     # Run the registry of the imported module, where other modules register too.
     from quietwell.cli import main as _main

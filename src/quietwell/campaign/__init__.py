@@ -3,7 +3,8 @@ moves, run step by step with a ledger, and resumed after a crash.
 
 ``load_campaign`` / ``check_campaign`` read and validate a campaign file on a setup;
 ``run_campaign`` runs it into a data directory and ``resume_campaign`` continues the
-interrupted one there. See the README for the file format.
+interrupted one there; ``campaign_plan`` is the same as one bluesky plan (for the queue
+server). See the README for the file format.
 """
 
 from ._file import (
@@ -25,6 +26,7 @@ from ._runner import (
     CampaignOutcome,
     MonitorStopped,
     ParticleLost,
+    campaign_plan,
     find_resumable,
     resume_campaign,
     run_campaign,
@@ -33,7 +35,7 @@ from ._runner import (
 __all__ = [
     "CAUTIONS", "SETUP_VALUES", "Campaign", "CampaignInterrupted", "CampaignOutcome",
     "CampaignStep", "CheckedCampaign", "Ledger", "MonitorStopped", "ParticleLost", "Progress",
-    "Ref", "campaign_dirs",
+    "Ref", "campaign_dirs", "campaign_plan",
     "check_campaign", "find_resumable", "load_campaign", "parse_campaign", "read_ledger",
     "resolve_params", "resume_campaign", "run_campaign",
 ]

@@ -19,7 +19,7 @@ import math
 import threading
 import time
 import uuid
-from collections.abc import Callable
+from collections.abc import Callable, Generator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -44,7 +44,7 @@ from ._ledger import Ledger, campaign_dirs, read_ledger
 from ._process import Faults, Signals, log_to, quiet_re
 from ._progress import Progress
 
-__all__ = ["run_campaign", "resume_campaign", "CampaignInterrupted", "CampaignOutcome",
+__all__ = ["run_campaign", "resume_campaign", "campaign_plan", "CampaignInterrupted", "CampaignOutcome",
            "ParticleLost", "MonitorStopped",
            "find_resumable", "CAUTIONS"]
 
@@ -109,6 +109,13 @@ def run_campaign(campaign: str | Path | Campaign, profile: str | Path | Setup,
         profile_path = find_profile(profile)
         setup = load_setup(profile_path)
     checked = check_campaign(camp, setup)
+    return _new_runner(checked, profile_path, data_dir, progress, on_step).run(session)
+
+
+def _new_runner(checked: CheckedCampaign, profile_path: str | Path, data_dir: str | Path,
+                progress: Progress | None, on_step: Callable | None) -> _Runner:
+    """A runner for a new campaign: its folder and the ledger's first entry."""
+    camp, setup = checked.campaign, checked.setup
     cid = _new_id(camp.name)
     folder = Path(data_dir).expanduser().resolve() / "campaigns" / cid
     ledger = Ledger(folder / "ledger.jsonl")
@@ -120,7 +127,7 @@ def run_campaign(campaign: str | Path | Campaign, profile: str | Path | Setup,
                   steps=[{"index": s.step.index, "id": s.step.id, "plan": s.step.plan,
                           "duration_s": s.checked.duration_s} for s in checked.steps],
                   duration_s=checked.duration_s)
-    return _Runner(checked, cid, folder, ledger, data_dir, progress, on_step).run(session)
+    return _Runner(checked, cid, folder, ledger, data_dir, progress, on_step)
 
 
 def find_resumable(data_dir: str | Path) -> Path:
@@ -145,7 +152,16 @@ def resume_campaign(data_dir: str | Path, *, progress: Progress | None = None,
     A campaign that a particle loss stopped is resumed only with
     ``particle_reloaded=True``: the user says a particle is trapped again.
     """
-    folder = find_resumable(data_dir)
+    runner = _reopened_runner(find_resumable(data_dir), data_dir, progress, on_step,
+                              particle_reloaded)
+    return runner.run(None, resume=True)
+
+
+def _reopened_runner(folder: Path, data_dir: str | Path, progress: Progress | None,
+                     on_step: Callable | None, particle_reloaded: bool,
+                     setup: Setup | None = None) -> _Runner:
+    """A runner that continues the campaign of ``folder`` (refused, in one line, after a
+    particle loss without ``particle_reloaded``, or when the setup changed)."""
     ledger = Ledger(folder / "ledger.jsonl")
     entries = ledger.entries()
     head = entries[0]
@@ -158,7 +174,8 @@ def resume_campaign(data_dir: str | Path, *, progress: Progress | None = None,
         ledger.append("particle_reloaded", reason="the user said a particle is loaded")
     camp = parse_campaign(head["campaign_text"], head.get("campaign_file", "<ledger>"))
     try:
-        setup = load_setup(head["setup_profile"])
+        if setup is None:
+            setup = load_setup(head["setup_profile"])
     except InputError as exc:
         raise InputError(f"{folder / 'ledger.jsonl'}: the campaign's setup cannot be loaded "
                          f"({exc}); restore {head['setup_profile']}") from None
@@ -167,8 +184,71 @@ def resume_campaign(data_dir: str | Path, *, progress: Progress | None = None,
                          f"{head['campaign_id']} started (sha256 {setup.sha256[:12]}, was "
                          f"{head['setup_sha256'][:12]}); restore it, or start a new campaign")
     checked = check_campaign(camp, setup)
-    runner = _Runner(checked, head["campaign_id"], folder, ledger, data_dir, progress, on_step)
-    return runner.run(None, resume=True)
+    return _Runner(checked, head["campaign_id"], folder, ledger, data_dir, progress, on_step)
+
+
+def campaign_plan(session: Any, campaign: str | Path, *, resume: bool = True,
+                  campaign_id: str = "", particle_reloaded: bool = False) -> Generator:
+    """A whole campaign as one bluesky plan, for a RunEngine that runs it (the queue
+    server's worker): checked first, then the same steps, ledger and log as
+    ``quietwell run``, into ``session``'s store and ``session.data_dir/campaigns/``.
+
+    Safe to run again: with ``resume`` (the default) it continues the latest campaign of
+    the same file text on the same setup in ``session.data_dir`` that did not complete
+    (the steps done per the ledger are skipped, the interrupted one is redone), and
+    starts a new campaign only when there is none. ``campaign_id`` continues that
+    campaign exactly (a completed one: nothing to do); ``resume=False`` always starts a
+    new one. Bad input raises :class:`~quietwell.InputError` with one line before
+    anything moves.
+    """
+    camp = load_campaign(campaign)
+    setup = session.setup
+    checked = check_campaign(camp, setup)
+    data_dir = Path(session.data_dir)
+    if campaign_id:
+        folder = data_dir / "campaigns" / campaign_id
+        if not (folder / "ledger.jsonl").exists():
+            raise InputError(f"campaign_id {campaign_id!r}: no campaign of that id in "
+                             f"{data_dir / 'campaigns'}; give the id of a campaign run there, "
+                             "or leave campaign_id empty")
+        head = read_ledger(folder / "ledger.jsonl")
+        if head[0].get("campaign_sha256") != camp.sha256:
+            raise InputError(f"{camp.source}: campaign {campaign_id} ran another text of the "
+                             "campaign file (sha256 differs); give its own file, or leave "
+                             "campaign_id empty to start a new campaign")
+        if any(e["event"] == "end" and e.get("status") == "completed" for e in head):
+            _log.info("campaign %s completed already: nothing to do", campaign_id)
+            return CampaignOutcome(campaign_id, folder)
+    else:
+        folder = _unfinished_campaign(data_dir, camp, setup) if resume else None
+    if folder is None:
+        runner = _new_runner(checked, session.profile, data_dir, None, None)
+    else:
+        entries = read_ledger(folder / "ledger.jsonl")
+        ends = [e for e in entries if e["event"] == "end"]
+        if ends and ends[-1].get("particle_lost") and not particle_reloaded:
+            raise InputError(f"{folder / 'ledger.jsonl'}: campaign {folder.name} stopped "
+                             f"because the particle was lost ({ends[-1]['reason']}); load a "
+                             "particle, then queue it with particle_reloaded=True")
+        runner = _reopened_runner(folder, data_dir, None, None, particle_reloaded, setup=setup)
+    return (yield from runner.plan(session, resume=folder is not None))
+
+
+def _unfinished_campaign(data_dir: Path, camp: Campaign, setup: Setup) -> Path | None:
+    """The latest campaign in ``data_dir`` of this file text on this setup, if it did not
+    complete (None if there is none, or the latest such campaign completed)."""
+    for folder in reversed(campaign_dirs(data_dir)):
+        try:
+            entries = read_ledger(folder / "ledger.jsonl")
+        except InputError:
+            continue
+        head = entries[0]
+        if head.get("campaign_sha256") != camp.sha256 or head.get("setup") != setup.name:
+            continue
+        if any(e["event"] == "end" and e.get("status") == "completed" for e in entries):
+            return None
+        return folder
+    return None
 
 
 class _Runner:
@@ -209,6 +289,13 @@ class _Runner:
         return results, attempts, failed_uids
 
     # --- running -------------------------------------------------------------------
+    # One step loop (:meth:`_steps`) serves both ways of running a campaign. It is a
+    # generator that hands each bluesky plan it wants run (a state move, a step's plan,
+    # the safe state) to its driver as a :class:`_Sub` and gets back an :class:`_Outcome`
+    # or the exception the plan raised. :func:`_drive` runs each plan with its own call of
+    # the RunEngine (``quietwell run``); :func:`_drive_inside` yields it from inside a
+    # running RunEngine (the queue server's ``campaign`` plan). The ledger, the log and
+    # the handling of every ending are the same code for both.
     def run(self, session: Any, *, resume: bool = False) -> CampaignOutcome:
         from ..session import open_session
 
@@ -229,7 +316,7 @@ class _Runner:
                     try:
                         if resume:
                             self._recover()
-                        self._run_steps()
+                        _drive(self._steps(), session.RE)
                     except CampaignInterrupted:
                         raise
                     except ParticleLost:
@@ -237,7 +324,7 @@ class _Runner:
                         raise
                     finally:
                         if not self._lost and (sig.reason is not None or sys_exc_pending()):
-                            self._safe_state()
+                            _drive(self._safe_state(), session.RE)
                     if sig.reason is not None:
                         raise self._interrupted()
             finally:
@@ -255,6 +342,47 @@ class _Runner:
             handler.close()
         return self.outcome
 
+    def plan(self, session: Any, *, resume: bool = False) -> Generator:
+        """The campaign as one bluesky plan, for a RunEngine that is already running it
+        (the queue server's worker): the same steps, ledger and log as :meth:`run`.
+
+        An abort, stop or halt of the RunEngine ends the step's run (kept, and marked in
+        the ledger as the queue's doing), puts the apparatus into its safe state and ends
+        the plan; running the plan again resumes the campaign.
+        """
+        from bluesky.utils import RunEngineControlException
+
+        handler = log_to(self.folder / "log.txt")
+        self.session = session
+        self.signals = _NoSignals()
+        self._docs = _DocWatch(self)
+        token = session.RE.subscribe(self._docs)
+        try:
+            if resume:
+                self._recover()
+            try:
+                yield from _drive_inside(self._steps(), self._docs)
+            except RunEngineControlException as exc:
+                reason = _control_reason(exc)
+                self.ledger.append("end", status="stopped", reason=reason)
+                _log.warning("campaign %s stopped: %s", self.cid, reason)
+                yield from _drive_inside(self._safe_state(), self._docs)
+                raise
+            except ParticleLost:
+                raise
+            except Exception:
+                yield from _drive_inside(self._safe_state(), self._docs)
+                raise
+        finally:
+            session.RE.unsubscribe(token)
+            try:
+                self._recovered()
+            except QuietwellError as exc:
+                _log.error("%s", exc)
+            logging.getLogger().removeHandler(handler)
+            handler.close()
+        return self.outcome
+
     def _interrupted(self) -> CampaignInterrupted:
         sig = self.signals
         self.ledger.append("end", status="stopped", reason=sig.reason)
@@ -268,8 +396,14 @@ class _Runner:
         catalog in the background (the journals, not the catalog, decide what is done,
         so the redo need not wait for the catalog: see :meth:`_recovered`)."""
         store = self.session.store
-        journal_runs = _journal_runs(store.journal_dir, self.cid)  # before any rename
         self._recovery_error: BaseException | None = None
+        journal_dir = getattr(store, "journal_dir", None)
+        if journal_dir is None or not hasattr(store, "recover"):
+            # a store without a local journal: the ledger alone says what is done
+            _log.info("the store keeps no journal here: resuming from the ledger alone")
+            self.faults.hit("resume")
+            return
+        journal_runs = _journal_runs(journal_dir, self.cid)  # before any rename
 
         def rebuild() -> None:
             try:
@@ -307,7 +441,9 @@ class _Runner:
                                    uid=run["uid"], exit_status=run["exit_status"] or "abort",
                                    reason="the process ended during the run")
 
-    def _run_steps(self) -> None:
+    def _steps(self) -> Generator:
+        """The step loop: every step not yet done per the ledger, in order (yields
+        :class:`_Sub` requests to its driver)."""
         results, attempts, stale = self._state_from_ledger()
         steps = self.checked.steps
         todo = [s for s in steps if s.step.id not in results]
@@ -317,7 +453,7 @@ class _Runner:
                 return
             i = cs.step.index
             attempt = attempts.get(i, 0) + 1
-            self._run_step(cs, attempt, results, stale.get(i, []))
+            yield from self._step(cs, attempt, results, stale.get(i, []))
             results, _, _ = self._state_from_ledger()
         self.ledger.append("end", status="completed", reason="")
         _log.info("campaign %s completed", self.cid)
@@ -325,7 +461,7 @@ class _Runner:
     def _before(self, index: int) -> LabState | None:
         return self.checked.steps[index - 1].after if index > 0 else None
 
-    def _run_step(self, cs, attempt: int, results: dict, stale: list[str]) -> None:
+    def _step(self, cs, attempt: int, results: dict, stale: list[str]) -> Generator:
         session, step = self.session, cs.step
         spec = STEPS[step.plan]
         params, _ = resolve_params(step, self.checked.setup, results,
@@ -341,27 +477,29 @@ class _Runner:
                   _jsonable_params(checked.params))
         self.progress.step(step.index, step.id, step.plan, checked.duration_s)
         target = _target(self._before(step.index), checked.needs)
-        quiet_re(session.RE, reach_state(session.apparatus, target))
+        yield _Sub(reach_state(session.apparatus, target))
         self._inject_faults(step)
         md = {"campaign_id": self.cid, "campaign_step": step.index, "campaign_attempt": attempt,
               "campaign_step_id": step.id}
         self._docs.expect(step.index, attempt)
         session.stop_reason = ""
-        from bluesky.utils import RunEngineInterrupted
+        from bluesky.utils import RunEngineControlException, RunEngineInterrupted
 
         uid = None
         try:
-            res = quiet_re(session.RE, spec.plan(session.apparatus, checked, md))
-            uid = res.run_start_uids[0] if res.run_start_uids else None
-            status, reason = res.exit_status, res.reason
+            res = yield _Sub(spec.plan(session.apparatus, checked, md))
+            uid, status, reason = res.uid, res.exit_status, res.reason
             summary = dict(res.plan_result or {})
         except RunEngineInterrupted:
             uid = self._docs.uid
             status, reason, summary = "abort", self.signals.reason or "interrupted", {}
+        except RunEngineControlException as exc:  # the queue's RunEngine was told to end
+            self._fail(cs, attempt, self._docs.uid, "abort", _control_reason(exc))
+            raise
         except ParticleLostError as exc:
             uid = self._docs.uid
             self._fail(cs, attempt, uid, "fail", str(exc))
-            self._lost_state()
+            yield from self._lost_state()
             self.ledger.append("end", status="stopped", reason=str(exc), particle_lost=True)
             _log.error("campaign %s stopped: %s", self.cid, exc)
             raise ParticleLost(
@@ -455,7 +593,7 @@ class _Runner:
         self.outcome.superseded[old] = new
         _log.info("run %s superseded by %s", old, new)
 
-    def _lost_state(self) -> None:
+    def _lost_state(self) -> Generator:
         """The profile's safe state after a particle loss ([monitors] safe_feedback,
         safe_laser_power); the Coulomb drive off."""
         import bluesky.plan_stubs as bps
@@ -472,18 +610,98 @@ class _Runner:
                 yield from bps.mv(app.laser.power, spec.safe_laser_power)
 
         try:
-            quiet_re(self.session.RE, plan())
+            yield _Sub(plan())
         except Exception as exc:  # noqa: BLE001 - logged; the store must still close
             _log.error("could not put the apparatus into its safe state: %s", exc)
 
-    def _safe_state(self) -> None:
+    def _safe_state(self) -> Generator:
         """Drive off; cold damping on below the loss pressure (the particle is kept)."""
         try:
             gain = next((cs.after.gain for cs in reversed(self.checked.steps)
                          if cs.after is not None and cs.after.gain), None)
-            quiet_re(self.session.RE, safe_state(self.session.apparatus, gain))
+            yield _Sub(safe_state(self.session.apparatus, gain))
         except Exception as exc:  # noqa: BLE001 - logged; the store must still close
             _log.error("could not put the apparatus into its safe state: %s", exc)
+
+
+@dataclass
+class _Sub:
+    """A bluesky plan the step loop asks its driver to run."""
+
+    plan: Generator
+
+
+@dataclass
+class _Outcome:
+    """How a plan run for the step loop ended: its first run's uid, the exit status and
+    reason of that run, and the plan's return value."""
+
+    uid: str | None
+    exit_status: str
+    reason: str
+    plan_result: Any
+
+
+class _NoSignals:
+    """Inside the queue server the worker, not the runner, handles signals."""
+
+    reason: str | None = None
+    code = 0
+
+
+_quiet_re = quiet_re  # the RunEngine call of quietwell run (the bench times it)
+
+
+def _drive(loop: Generator, RE: Any) -> Any:
+    """Run the step loop ``loop`` with one RunEngine call per plan it asks for; a plan's
+    exception (``RunEngineInterrupted`` after a signal) is thrown back into the loop."""
+    value: Any = None
+    error: BaseException | None = None
+    while True:
+        try:
+            sub = loop.throw(error) if error is not None else loop.send(value)
+        except StopIteration as stop:
+            return stop.value
+        value, error = None, None
+        try:
+            res = _quiet_re(RE, sub.plan)
+        except Exception as exc:  # noqa: BLE001 - handed to the step loop, which decides
+            error = exc
+        else:
+            value = _Outcome(res.run_start_uids[0] if res.run_start_uids else None,
+                             res.exit_status, res.reason, res.plan_result)
+
+
+def _drive_inside(loop: Generator, docs: _DocWatch) -> Generator:
+    """The step loop ``loop`` as one bluesky plan: each plan it asks for is yielded from,
+    in the RunEngine that runs this one; a plan's exception (also the RunEngine's
+    ``RequestAbort``) is thrown back into the loop."""
+    value: Any = None
+    error: BaseException | None = None
+    while True:
+        try:
+            sub = loop.throw(error) if error is not None else loop.send(value)
+        except StopIteration as stop:
+            return stop.value
+        value, error = None, None
+        docs.stop = None
+        try:
+            result = yield from sub.plan
+        except Exception as exc:  # noqa: BLE001 - handed to the step loop, which decides
+            error = exc
+        else:
+            stop = docs.stop or {}
+            value = _Outcome(docs.uid if docs.stop else None, stop.get("exit_status", "success"),
+                             stop.get("reason", ""), result)
+
+
+def _control_reason(exc: BaseException) -> str:
+    """Words for the RunEngine's own abort, stop or halt."""
+    from bluesky.utils import RequestStop
+
+    if isinstance(exc, RequestStop):
+        return "stopped from the queue server (re_stop)"
+    return "aborted from the queue server (re_abort)"
 
 
 def sys_exc_pending() -> bool:
@@ -572,6 +790,7 @@ class _DocWatch:
     def __init__(self, runner: _Runner) -> None:
         self.runner = runner
         self.uid: str | None = None
+        self.stop: dict | None = None  # the stop document of the run of ``uid``
         self._streams: dict[str, str] = {}
         self._step = self._attempt = 0
         self.records = 0
@@ -604,6 +823,8 @@ class _DocWatch:
                              d.get("message"))
                 r.progress.monitor(d)
         elif name == "stop":
+            if doc.get("run_start") == self.uid:
+                self.stop = doc
             r.faults.hit("stop")
 
 
