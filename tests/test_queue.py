@@ -24,9 +24,11 @@ from pathlib import Path
 
 import pytest
 
-import quietwell
 from quietwell.campaign import campaign_dirs, read_ledger
 from quietwell.store import close_catalog
+
+sys.path.insert(0, str(Path(__file__).parent))
+from lab_server import LabServer, server_profile  # noqa: E402
 
 HERE = Path(__file__).parent
 SHORT = HERE / "data" / "queue-campaign.toml"
@@ -139,12 +141,33 @@ def startup(tmp_path) -> tuple[Path, Path]:
 
 
 @pytest.fixture
-def manager(startup, redis_uri, tmp_path):
-    m = _Manager(startup[0], redis_uri, tmp_path / "manager.log",
+def manager(lab_startup, redis_uri, tmp_path):
+    m = _Manager(lab_startup[0], redis_uri, tmp_path / "manager.log",
                  f"qwtest_{uuid.uuid4().hex[:8]}")
     yield m
     m.kill()
     m.drop_keys()
+
+
+@pytest.fixture(scope="module")
+def lab(pg_admin_uri, tmp_path_factory):
+    """The lab's shared catalog (tiled on PostgreSQL) that the queued campaign writes to."""
+    server = LabServer(pg_admin_uri, tmp_path_factory.mktemp("lab"))
+    server.start()
+    yield server
+    server.stop()
+
+
+@pytest.fixture
+def lab_startup(lab, tmp_path, monkeypatch) -> tuple[Path, Path]:
+    """A startup directory of amber whose profile writes to the shared catalog."""
+    monkeypatch.setenv("QWTEST_KEY", lab.key)  # the manager's worker inherits it
+    profile = server_profile(tmp_path, "amber", lab)
+    data = tmp_path / "data"
+    res = _cli("queue-startup", str(profile), "--data-dir", str(data), "-o",
+               str(tmp_path / "startup"))
+    assert res.returncode == 0, res.stderr
+    return tmp_path / "startup", data
 
 
 def _run_item(api, timeout: float = 600) -> dict:
@@ -159,14 +182,12 @@ def _ledger(data: Path) -> list[dict]:
     return read_ledger(folder / "ledger.jsonl")
 
 
-def _catalog_runs(data: Path, cid: str) -> dict[int, list]:
-    client = quietwell.open_catalog(data)
+def _catalog_runs(client, cid: str) -> dict[int, list]:
+    from tiled.queries import Key
+
     runs: dict[int, list] = {}
-    for uid in client:
-        run = client[uid]
-        start = run.metadata["start"]
-        if start.get("campaign_id") == cid:
-            runs.setdefault(start["campaign_step"], []).append(run)
+    for _, run in client.search(Key("start.campaign_id") == cid).items():
+        runs.setdefault(run.metadata["start"]["campaign_step"], []).append(run)
     return runs
 
 
@@ -219,11 +240,12 @@ def test_redis_not_answering_is_one_line(startup):
 
 
 @pytest.mark.slow
-def test_queued_campaign_runs_and_resumes_after_the_manager_is_killed(startup, manager,
-                                                                         tmp_path):
+def test_queued_campaign_runs_and_resumes_after_the_manager_is_killed(lab_startup, manager,
+                                                                         lab, tmp_path):
+    """Into the lab's shared catalog, read back from there."""
     from bluesky_queueserver_api import BPlan
 
-    st, data = startup
+    st, data = lab_startup
     bad = tmp_path / "bad.toml"
     bad.write_text(SHORT.read_text().replace('records = 2', 'records = "two"'))
     api = manager.start()
@@ -277,7 +299,7 @@ def test_queued_campaign_runs_and_resumes_after_the_manager_is_killed(startup, m
     assert sorted(e["step"] for e in done) == list(range(N_STEPS))  # each once
     attempts = [e for e in entries if e["event"] == "attempt"]
     assert [e["step"] for e in attempts] == [0, 1, 1, 2]  # step 0 not redone, step 1 redone
-    runs = _catalog_runs(data, cid)
+    runs = _catalog_runs(lab.client(), cid)
     try:
         assert sorted(runs) == list(range(N_STEPS))
         for step, rs in runs.items():
