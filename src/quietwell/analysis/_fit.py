@@ -349,8 +349,15 @@ class _Problem:
 
 
 _LN_FLOOR_WIDTH = 10.0
-#: Lines at least this many bins wide are fitted with the plain model only.
-_POLISH_BELOW_BINS = 10.0
+#: Lines at least this many bins wide are fitted with the plain model only. Infinite:
+#: every Welch spectrum is polished with the window-exact model. At 10 (the setting
+#: before issue 14) a broad line with many averages kept a bias of 0.8 standard errors
+#: in its width, and a line near Nyquist several, from leakage and aliasing that only
+#: the window-exact model holds (bench/fit_coverage.py).
+_POLISH_BELOW_BINS = math.inf
+#: Widen the covariance for the correlation of neighbouring bins of *overlapping*
+#: segments too (see :func:`_overlap_variance_factor`); False: as before issue 14.
+_CROSS_SEGMENT_CORRELATION = True
 
 
 def _objective(prob: _Problem):
@@ -786,6 +793,8 @@ class _Spectrum:
     nyquist: float | None = None
     window: np.ndarray | None = None
     n_samples: int | None = None
+    n_segments: int = 1
+    step: int = 0
 
 
 def _as_spectrum(spectrum) -> _Spectrum:
@@ -805,6 +814,8 @@ def _as_spectrum(spectrum) -> _Spectrum:
             nyquist=spectrum.sample_rate / 2.0,
             window=spectrum.window_values,
             n_samples=spectrum.n_samples,
+            n_segments=int(spectrum.n_segments),
+            step=int(spectrum.nperseg - spectrum.noverlap),
         )
     try:
         f, p, k = spectrum
@@ -858,7 +869,7 @@ def _band_bins(spec: _Spectrum, band) -> tuple[np.ndarray, np.ndarray, np.ndarra
     return mask, f, p
 
 
-def _guesses(
+def _candidate_lines(
     f: np.ndarray,
     p: np.ndarray,
     k: float,
@@ -956,7 +967,7 @@ def _line_widths(
     if narrow:
         options["resolution_bins"] = 0.0
     try:
-        guesses = _guesses(f, p, spec.k, spec.r, floor, peaks, **options, false_alarm=false_alarm)
+        guesses = _candidate_lines(f, p, spec.k, spec.r, floor, peaks, **options, false_alarm=false_alarm)
     except UnresolvedPeakError:
         return []
     out = []
@@ -1055,17 +1066,69 @@ def fit_psd(
     True
     """
     spec = _as_spectrum(spectrum)
-    k, r, df, nyquist = spec.k, spec.r, spec.df, spec.nyquist
     mask, f, p = _band_bins(spec, band)
     _compile_kernels()
-    floor = _floor_estimate(p, k)
-    guesses = _guesses(f, p, k, r, floor, peaks, **_search_options(spec), false_alarm=false_alarm)
+    floor = _floor_estimate(p, spec.k)
+    guesses = _candidate_lines(f, p, spec.k, spec.r, floor, peaks, **_search_options(spec),
+                       false_alarm=false_alarm)
+    prob, theta0 = _initial_problem(spec, mask, f, p, floor, guesses)
+    fitted = _fit_then_polish(prob, theta0, floor)
+    _check_resolved(fitted, spec, f, p, min_linewidth_bins, min_significance)
+    _check_converged(fitted, f)
+    _check_inside_band(fitted, f)
+    cov = _covariance(fitted, f, spec.r)
+    if _CROSS_SEGMENT_CORRELATION:
+        cov = cov * _overlap_variance_factor(spec)
+    peak_fits = _peak_fits(fitted, cov, min_significance)
+    return _spectrum_fit(fitted, peak_fits, cov, f, spec)
 
-    n_peaks = len(guesses)
+
+# ----------------------------------------------------------------------------
+# The stages of fit_psd, in the order it calls them. Candidate lines and their
+# initial values come from _candidate_lines (above), shared with the segment-length rule.
+# ----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Fitted:
+    """The optimum of one fit, in the internal and in linear parameters.
+
+    ``prob`` is the model the optimum belongs to (the plain or the window-exact one),
+    ``jac`` and ``hess`` its score and Fisher information (the weak floor prior
+    included), ``f0`` in Hz, ``gamma`` in 1/s, ``area`` in ``units**2``, ``background``
+    in ``units**2/Hz``.
+    """
+
+    prob: _Problem
+    res: _Result
+    jac: object
+    hess: object
+    f0: np.ndarray
+    gamma: np.ndarray
+    area: np.ndarray
+    background: float
+
+    @property
+    def theta(self) -> np.ndarray:
+        return self.res.x
+
+    @property
+    def n_peaks(self) -> int:
+        return self.f0.size
+
+
+def _initial_problem(
+    spec: _Spectrum, mask: np.ndarray, f: np.ndarray, p: np.ndarray, floor: float,
+    guesses: list[tuple[float, float, float]],
+) -> tuple[_Problem, np.ndarray]:
+    """The likelihood problem in internal units (the data over the floor estimate;
+    the window-exact model attached for a Welch spectrum) and its starting point
+    ``theta0`` from the candidate lines' ``(f0, gamma, area)``."""
+    df, nyquist = spec.df, spec.nyquist
     prob = _Problem(
         om=_TWO_PI * f,
         p=p / floor,
-        k=k,
+        k=spec.k,
         df=df,
         f_ref=np.array([g[0] for g in guesses]),
         scale_a=df,
@@ -1078,12 +1141,18 @@ def fit_psd(
             bins=_as_slice(np.flatnonzero(mask)),
             lag_times=np.arange(spec.window.size) / (2.0 * nyquist),
         )
-    theta0 = np.empty(3 * n_peaks + 1)
+    theta0 = np.empty(3 * len(guesses) + 1)
     for j, (_, gamma0, area0) in enumerate(guesses):
         theta0[3 * j : 3 * j + 3] = (0.0, math.log(gamma0), math.log(area0 / floor / df))
     theta0[-1] = 0.0
-    # Plain model first (cheap); for a Welch spectrum the window-exact model
-    # then only polishes, in a few iterations, from that optimum.
+    return prob, theta0
+
+
+def _fit_then_polish(prob: _Problem, theta0: np.ndarray, floor: float) -> _Fitted:
+    """Fisher scoring with the plain model (cheap); for a Welch spectrum whose
+    narrowest line spans fewer than ``_POLISH_BELOW_BINS`` bins, a few more iterations
+    with the window-exact model from that optimum."""
+    df = prob.df
     stages = [dataclasses.replace(prob, lag_window=None)] if prob.lag_window is not None else []
     stages.append(prob)
     theta_start = theta0
@@ -1101,18 +1170,23 @@ def fit_psd(
             res = _fisher_scoring(fun, jac, hess, theta_start)
         theta_start = res.x
         prob_used = stage
-    prob = prob_used
-    theta = res.x
-    f0, gamma, area_n, b_n = prob.unpack(theta)
-    area = area_n * floor
-    background = b_n * floor
+    f0, gamma, area_n, b_n = prob_used.unpack(res.x)
+    return _Fitted(prob=prob_used, res=res, jac=jac, hess=hess, f0=f0, gamma=gamma,
+                   area=area_n * floor, background=b_n * floor)
 
-    # Too narrow to be resolved: checked before convergence, since a
-    # line of one or two bins drives the width towards zero.
-    for j in range(n_peaks):
+
+def _check_resolved(
+    fitted: _Fitted, spec: _Spectrum, f: np.ndarray, p: np.ndarray,
+    min_linewidth_bins: float, min_significance: float,
+) -> None:
+    """Refuse a line narrower than ``min_linewidth_bins`` bins: a noise spike the fit
+    collapsed onto (too little excess power in the five bins around it) or a real line
+    that needs a finer resolution. Checked before convergence, since a line of one or
+    two bins drives the width towards zero."""
+    df, k, r = spec.df, spec.k, spec.r
+    f0, gamma, background = fitted.f0, fitted.gamma, fitted.background
+    for j in range(fitted.n_peaks):
         if gamma[j] / _TWO_PI < min_linewidth_bins * df:
-            # A narrow line or a noise spike the fit collapsed onto: tell them
-            # apart by the excess power in the five bins around f0.
             i = int(np.argmin(np.abs(f - f0[j])))
             near = slice(max(0, i - 2), i + 3)
             n_near = p[near].size
@@ -1130,21 +1204,31 @@ def fit_psd(
                 f"Hz, below {min_linewidth_bins:g} bins ({min_linewidth_bins * df:.3g} Hz at "
                 f"{df:.3g} Hz per bin); " + _longer_hint(spec, gamma[j] / _TWO_PI)
             )
-    # Converged when the Newton step would lower the negative log-likelihood by
-    # far less than one unit, whatever the optimiser's own verdict.
-    grad = jac(theta)
+
+
+def _check_converged(fitted: _Fitted, f: np.ndarray) -> None:
+    """Converged when the Newton step would lower the negative log-likelihood by far
+    less than one unit, whatever the optimiser's own verdict."""
+    theta, res = fitted.theta, fitted.res
+    grad = fitted.jac(theta)
     with np.errstate(all="ignore"):
         try:
-            decrement = float(grad @ np.linalg.solve(hess(theta), grad))
+            decrement = float(grad @ np.linalg.solve(fitted.hess(theta), grad))
         except np.linalg.LinAlgError:
             decrement = math.inf
     if not (res.success or decrement < 1e-6) or not np.all(np.isfinite(theta)):
         raise FitError(
-            f"the likelihood fit of {n_peaks} peak(s) in {f[0]:.6g}..{f[-1]:.6g} Hz did not "
-            f"converge ({res.message}); give initial peak frequencies or narrow the band"
+            f"the likelihood fit of {fitted.n_peaks} peak(s) in {f[0]:.6g}..{f[-1]:.6g} Hz did "
+            f"not converge ({res.message}); give initial peak frequencies or narrow the band"
         )
+
+
+def _check_inside_band(fitted: _Fitted, f: np.ndarray) -> None:
+    """Refuse a line wider than the band or centred outside it (the band then holds
+    only a flank, and the fit is an extrapolation)."""
     span = f[-1] - f[0]
-    for j in range(n_peaks):
+    f0, gamma = fitted.f0, fitted.gamma
+    for j in range(fitted.n_peaks):
         if gamma[j] / _TWO_PI > span or not f[0] <= f0[j] <= f[-1]:
             raise FitError(
                 f"fitted peak {j} (f0={f0[j]:.6g} Hz, gamma/2pi={gamma[j] / _TWO_PI:.3g} Hz) "
@@ -1152,7 +1236,13 @@ def fit_psd(
                 "initial peak frequencies"
             )
 
-    fisher = hess(theta)
+
+def _covariance(fitted: _Fitted, f: np.ndarray, r: float) -> np.ndarray:
+    """Covariance of the linear parameters ``(f0, gamma, area)`` per peak and the
+    floor: the inverse Fisher information, widened by the bin correlation ``r`` and
+    carried to linear parameters by the derivatives of the parametrisation."""
+    theta = fitted.theta
+    fisher = fitted.hess(theta)
     try:
         cov_t = np.linalg.inv(fisher) * r
     except np.linalg.LinAlgError:
@@ -1164,15 +1254,57 @@ def fit_psd(
         raise FitError("the covariance of the fit is not positive definite; fit fewer peaks")
     # d(linear)/d(theta): f0 = f_ref + u df, gamma = e^lng, area = e^lna * df * floor, b = e^lnb * floor
     scale = np.empty(theta.size)
-    scale[0:-1:3] = df
-    scale[1:-1:3] = gamma
-    scale[2:-1:3] = area
-    scale[-1] = background
-    cov = cov_t * np.outer(scale, scale)
-    err = np.sqrt(np.diag(cov))
+    scale[0:-1:3] = fitted.prob.df
+    scale[1:-1:3] = fitted.gamma
+    scale[2:-1:3] = fitted.area
+    scale[-1] = fitted.background
+    return cov_t * np.outer(scale, scale)
 
+
+def _overlap_variance_factor(spec: _Spectrum) -> float:
+    """Ratio of the variance of a smooth functional of a Welch spectrum to the
+    ``r / K`` the covariance was widened by.
+
+    For a locally white process, bins ``k`` and ``k + m`` of segments ``d`` samples
+    apart have the correlation ``|C(d, m)|**2``, ``C(d, m) = sum_n w[n] w[n + d]
+    exp(-2 pi i m n / N) / sum w**2``. A parameter that varies slowly over a few bins
+    sees the bins' variance multiplied by ``V = sum_m |C(0, m)|**2 + 2 sum_j (1 - j/M)
+    sum_m |C(j s, m)|**2`` (per average, M segments with step s); by Parseval ``sum_m
+    |C(d, m)|**2 = N sum_n (w[n] w[n + d])**2 / (sum w**2)**2``. ``r / K`` (the
+    bin correlation within one segment times Welch's same-bin overlap formula, IEEE
+    Trans. Audio Electroacoust. 15, 70 (1967)) leaves out the neighbouring bins of
+    overlapping segments: 2.111 against 2.052 for Hann at 50 % overlap (about 1.4 %
+    in the standard errors). Derived here from the variance of averaged periodograms
+    in that paper, with Parseval; checked by simulation in tests/test_fit_coverage.py.
+    """
+    if spec.window is None or spec.n_segments < 2 or spec.step <= 0:
+        return 1.0
+    w = np.asarray(spec.window, dtype=np.float64)
+    n = w.size
+    w2 = float(_dot(w, w))
+    total = n * float(_dot(w * w, w * w)) / w2**2
+    j = 1
+    while j < spec.n_segments and j * spec.step < n:
+        d = j * spec.step
+        prod = w[: n - d] * w[d:]
+        total += 2.0 * (1.0 - j / spec.n_segments) * n * float(_dot(prod, prod)) / w2**2
+        j += 1
+    return total / spec.n_segments * spec.k / spec.r
+
+
+def _peak_fits(fitted: _Fitted, cov: np.ndarray, min_significance: float) -> list[PeakFit]:
+    """One :class:`PeakFit` per line (in the fit's order); a line whose area is below
+    ``min_significance`` standard errors is refused."""
+    err = np.sqrt(np.diag(cov))
+    f0, gamma, area, background = fitted.f0, fitted.gamma, fitted.area, fitted.background
     fits = []
-    for j in range(n_peaks):
+    for j in range(fitted.n_peaks):
+        if area[j] < min_significance * err[3 * j + 2]:
+            raise UnresolvedPeakError(
+                f"peak near f0={f0[j]:.6g} Hz is not significant over the floor: "
+                f"area={area[j]:.3g} +- {err[3 * j + 2]:.3g} units**2, below "
+                f"{min_significance:g} standard errors; use a longer record (more averages)"
+            )
         fits.append(
             PeakFit(
                 f0=float(f0[j]),
@@ -1185,39 +1317,46 @@ def fit_psd(
                 background_stderr=float(err[-1]),
             )
         )
-        if area[j] < min_significance * err[3 * j + 2]:
-            raise UnresolvedPeakError(
-                f"peak near f0={f0[j]:.6g} Hz is not significant over the floor: "
-                f"area={area[j]:.3g} +- {err[3 * j + 2]:.3g} units**2, below "
-                f"{min_significance:g} standard errors; use a longer record (more averages)"
-            )
+    return fits
 
-    deviance = 2.0 * float(res.fun)
-    dof = int(f.size - theta.size)
+
+def _goodness(deviance: float, n_bins: int, n_params: int, k: float, r: float) -> GoodnessOfFit:
+    """Reduced deviance and its p-value: the mean deviance of one Gamma(K) bin is
+    ``m_K = 2 K (ln K - digamma(K))``; correlated bins make the deviance a chi-square
+    of ``dof / r`` degrees of freedom scaled by ``r`` with the same mean
+    (Satterthwaite)."""
+    dof = int(n_bins - n_params)
     mean_dev = 2.0 * k * (math.log(k) - float(scipy.special.digamma(k)))
-    # Satterthwaite: correlated bins make the deviance a chi-square of dof / r
-    # degrees of freedom scaled by r, with the same mean.
     c = mean_dev * r
     p_value = float(scipy.special.chdtrc(dof / r, deviance / c))  # chi-square survival
-    goodness = GoodnessOfFit(deviance=deviance, dof=dof, reduced=deviance / (dof * mean_dev), p_value=p_value)
+    return GoodnessOfFit(deviance=deviance, dof=dof, reduced=deviance / (dof * mean_dev), p_value=p_value)
+
+
+def _spectrum_fit(
+    fitted: _Fitted, peak_fits: list[PeakFit], cov: np.ndarray, f: np.ndarray, spec: _Spectrum
+) -> SpectrumFit:
+    """The result, peaks in order of increasing ``f0`` (the covariance permuted alike)."""
+    theta = fitted.theta
+    n_peaks = fitted.n_peaks
+    err_background = float(np.sqrt(cov[-1, -1]))
     names = []
     for j in range(n_peaks):
         names += [f"f0_{j}", f"gamma_{j}", f"area_{j}"]
     names.append("background")
-    order = np.argsort(f0, kind="stable")
+    order = np.argsort(fitted.f0, kind="stable")
     perm = np.concatenate([np.arange(3 * j, 3 * j + 3) for j in order] + [[theta.size - 1]])
     return SpectrumFit(
-        peaks=tuple(fits[j] for j in order),
-        background=float(background),
-        background_stderr=float(err[-1]),
-        goodness=goodness,
+        peaks=tuple(peak_fits[j] for j in order),
+        background=float(fitted.background),
+        background_stderr=err_background,
+        goodness=_goodness(2.0 * float(fitted.res.fun), f.size, theta.size, spec.k, spec.r),
         n_bins=int(f.size),
         band=(float(f[0]), float(f[-1])),
         covariance=cov[np.ix_(perm, perm)],
         parameter_names=tuple(names),
-        effective_averages=k,
-        bin_correlation=r,
-        n_iterations=int(res.nit),
+        effective_averages=spec.k,
+        bin_correlation=spec.r,
+        n_iterations=int(fitted.res.nit),
     )
 
 
