@@ -6,7 +6,6 @@ Plans open runs; the stubs here never do.
 
 from __future__ import annotations
 
-import functools
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -71,23 +70,6 @@ class Apparatus:
         return out + ([self.heterodyne] if self.heterodyne is not None else [])
 
 
-@functools.cache
-def package_versions() -> dict[str, str]:
-    """Versions of Python and of the packages that shape the data (start documents
-    record them, so a report can say what took the data)."""
-    import platform
-    from importlib.metadata import PackageNotFoundError, version
-
-    out = {"python": platform.python_version()}
-    for dist in ("bluesky", "ophyd-async", "event-model", "tiled", "bluesky-tiled-plugins",
-                 "numpy", "scipy"):
-        try:
-            out[dist] = version(dist)
-        except PackageNotFoundError:
-            continue
-    return out
-
-
 def run_metadata(app: Apparatus, plan_name: str, plan_args: dict, md: dict | None,
                  dimensions: list | None = None) -> dict:
     """Start-document metadata shared by every plan (setup, hash, version, sim truth)."""
@@ -98,7 +80,6 @@ def run_metadata(app: Apparatus, plan_name: str, plan_args: dict, md: dict | Non
         "setup_description": app.setup.as_dict(),
         "setup_sha256": app.setup.sha256,
         "quietwell_version": __version__,
-        "versions": package_versions(),
         "hints": {"dimensions": dimensions or [(["time"], "primary")]},
     }
     if app.sim_truth is not None:

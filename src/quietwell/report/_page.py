@@ -201,6 +201,8 @@ code,.mono{font-family:ui-monospace,"DejaVu Sans Mono",Menlo,Consolas,monospace;
 table{border-collapse:collapse;width:100%;background:var(--card);font-size:13px}
 th,td{padding:4px 8px;border-bottom:1px solid var(--rule);text-align:left;vertical-align:top}
 th{font-weight:600;color:var(--soft);font-size:12px;background:#f1ece3}
+table.values,table.leftout-values{width:auto;min-width:62%}
+table.values td:first-child{padding-right:28px}
 td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 .badge{display:inline-block;padding:0 8px;border-radius:9px;font-size:12px;color:#fff;
 white-space:nowrap}
@@ -325,7 +327,8 @@ def _monitors(data: ReportData, out: list[str]) -> None:
 
 
 def _value_rows(r: RunEntry, out: list[str]) -> None:
-    keys = [k for k in r.summary if not k.endswith("_stderr")]
+    keys = sorted((k for k in r.summary if not k.endswith("_stderr")),
+                  key=lambda k: (not _is_num(r.summary[k]), k))
     for k in keys:
         v = r.summary[k]
         unit = r.units.get(k, "")
