@@ -380,7 +380,7 @@ def _collect_uids(data: ReportData, uids: list[str]) -> ReportData:
                              "run there (the campaign's ledger lists them)")
         chosen.append((hits[0], store[hits[0]]))
     ledgers: dict[str, list[dict]] = {}
-    for uid, run in chosen:
+    for _uid, run in chosen:
         start = dict(run.metadata.get("start") or {})
         cid = start.get("campaign_id")
         if cid and cid not in ledgers:

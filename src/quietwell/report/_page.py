@@ -229,7 +229,8 @@ footer{margin-top:36px;color:var(--soft);font-size:12px}
 
 def _badge(status: str) -> str:
     cls = "s-" + status.replace(" ", "-")
-    return f'<span class="badge {cls}" data-status="{_e(status)}">{_e(_STATUS_TEXT.get(status, status))}</span>'
+    text = _e(_STATUS_TEXT.get(status, status))
+    return f'<span class="badge {cls}" data-status="{_e(status)}">{text}</span>'
 
 
 def _header(data: ReportData, out: list[str]) -> None:

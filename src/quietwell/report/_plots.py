@@ -88,6 +88,16 @@ def _styled(func):
     return wrapper
 
 
+def _thin(f: np.ndarray, p: np.ndarray, most: int = 500) -> tuple[np.ndarray, np.ndarray, int]:
+    """Average neighbouring PSD bins in groups so that at most ``most`` points are drawn
+    (the page stays small; the fits use every bin). Returns the group size too."""
+    k = max(1, int(math.ceil(f.size / most)))
+    n = (f.size // k) * k
+    if k == 1 or n == 0:
+        return f, p, 1
+    return f[:n].reshape(-1, k).mean(axis=1), p[:n].reshape(-1, k).mean(axis=1), k
+
+
 def _start(run: Any) -> dict:
     return dict(run.metadata.get("start") or {})
 
@@ -220,12 +230,13 @@ def psd_figure(run: Any, record: int = 0, *, spectra: Mapping[str, AxisSpectrum]
         sel = (f >= sp.band[0]) & (f <= sp.band[1])
         top, bottom = axs[0][j], axs[1][j]
         colour = AXIS_COLOURS[axis]
-        top.semilogy(f[sel] / 1e3, p[sel], ".", ms=2.2, color=colour, alpha=0.55,
-                     label=f"record {record}, Welch PSD")
+        fs_, ps_, k = _thin(f[sel], p[sel])
+        label = f"record {record}, Welch PSD" + (f" ({k} bins a point)" if k > 1 else "")
+        top.semilogy(fs_ / 1e3, ps_, ".", ms=2.2, color=colour, alpha=0.55, label=label)
         if sp.fit is not None:
-            model = sp.fit.model(f[sel])
-            top.semilogy(f[sel] / 1e3, model, "-", lw=1.1, color=_MODEL, label="fitted model")
-            bottom.plot(f[sel] / 1e3, p[sel] / model, ".", ms=2.0, color=colour, alpha=0.6)
+            model = sp.fit.model(fs_)
+            top.semilogy(fs_ / 1e3, model, "-", lw=1.1, color=_MODEL, label="fitted model")
+            bottom.plot(fs_ / 1e3, ps_ / model, ".", ms=2.0, color=colour, alpha=0.6)
             bottom.axhline(1.0, color=_MODEL, lw=0.8)
             own = min(sp.fit.peaks, key=lambda pk: abs(pk.f0 - _modes(run)[j]))
             top.set_title(f"{axis}: f₀ {own.f0 / 1e3:.3f} kHz, γ/2π {own.gamma / (2 * math.pi):.3g}"
@@ -574,10 +585,11 @@ def sideband_figure(run: Any, record: int = 0, *, spectrum: SidebandSpectrum | N
     for ax, (name, (band, fit)) in zip(axs[0], (("Stokes", sp.stokes),
                                                 ("anti-Stokes", sp.antistokes)), strict=True):
         sel = (f >= band[0]) & (f <= band[1])
-        ax.semilogy(f[sel] / 1e3, p[sel], ".", ms=2.2, color=colour, alpha=0.55,
-                    label=f"record {record}, beat PSD")
+        fs_, ps_, k = _thin(f[sel], p[sel])
+        ax.semilogy(fs_ / 1e3, ps_, ".", ms=2.2, color=colour, alpha=0.55,
+                    label=f"record {record}, beat PSD" + (f" ({k} bins a point)" if k > 1 else ""))
         if fit is not None:
-            ax.semilogy(f[sel] / 1e3, fit.model(f[sel]), "-", color=_MODEL, lw=1.1,
+            ax.semilogy(fs_ / 1e3, fit.model(fs_), "-", color=_MODEL, lw=1.1,
                         label=f"fit, red. dev. {fit.goodness.reduced:.2f}")
         ax.set_title(f"{name} sideband of {sp.axis}", loc="left")
         centre = 0.5 * (band[0] + band[1]) if fit is None else min(

@@ -9,6 +9,7 @@ mapping can replace it without touching the rest of the report.
 from __future__ import annotations
 
 import os
+import time
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
@@ -16,6 +17,9 @@ from typing import Any
 from .._errors import InputError, QuietwellError
 
 __all__ = ["open_runs", "store_holder", "check_data_dir", "StoreBusy"]
+
+#: Seconds to wait for a store that another process is just closing.
+_RELEASE_WAIT_S = 5.0
 
 
 class StoreBusy(QuietwellError):
@@ -75,6 +79,10 @@ def open_runs(data_dir: str | Path) -> Mapping[str, Any]:
         raise InputError(f"--data-dir {data_dir}: no catalog/catalog.db (no run reached the "
                          "store); give the data directory a campaign ran into")
     holder = store_holder(path)
+    deadline = time.monotonic() + _RELEASE_WAIT_S
+    while holder is not None and holder != str(os.getpid()) and time.monotonic() < deadline:
+        time.sleep(0.2)  # a process that just ended may still be closing its catalog
+        holder = store_holder(path)
     if holder is not None and holder != str(os.getpid()):
         raise StoreBusy(f"--data-dir {data_dir} is in use by another quietwell process (pid "
                         f"{holder}); wait until it ends, or stop it", holder)
