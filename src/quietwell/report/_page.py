@@ -203,6 +203,7 @@ th,td{padding:4px 8px;border-bottom:1px solid var(--rule);text-align:left;vertic
 th{font-weight:600;color:var(--soft);font-size:12px;background:#f1ece3}
 table.values,table.leftout-values{width:auto;min-width:62%}
 table.values td:first-child{padding-right:28px}
+td.text{max-width:34em;overflow-wrap:anywhere}
 td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 .badge{display:inline-block;padding:0 8px;border-radius:9px;font-size:12px;color:#fff;
 white-space:nowrap}
@@ -342,8 +343,24 @@ def _value_rows(r: RunEntry, out: list[str]) -> None:
                 attrs += f' data-stderr="{_e(repr(e))}"'
             cell = f'<td class="num derived" {attrs}>{_e(_num_text(float(v), e))}</td>'
         else:
-            cell = f'<td class="derived" {attrs} data-text="{_e(v)}">{_e(v)}</td>'
+            cell = (f'<td class="derived text" {attrs} data-text="{_e(v)}">'
+                    f"{_e(_ranges(v) if k == 'records_used' else v)}</td>")
         out.append(f"<tr><td>{_e(k)}</td>{cell}<td>{_e(unit)}</td></tr>")
+
+
+def _ranges(text: Any) -> str:
+    """``"1,2,3,5"`` as ``"1–3, 5"`` (the page shows runs of record numbers as ranges)."""
+    try:
+        nums = [int(t) for t in str(text).split(",") if t.strip()]
+    except ValueError:
+        return str(text)
+    parts: list[list[int]] = []
+    for n in nums:
+        if parts and parts[-1][1] == n - 1:
+            parts[-1][1] = n
+        else:
+            parts.append([n, n])
+    return ", ".join(f"{a}" if a == b else f"{a}–{b}" for a, b in parts)
 
 
 def _values(data: ReportData, out: list[str]) -> None:
