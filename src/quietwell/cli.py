@@ -510,6 +510,32 @@ def _queue_add(args: argparse.Namespace) -> int:
     print(CAUTIONS, file=sys.stderr)
     print(f"queued: campaign({item['args'][0]!r}) as item {item['item_uid']}"
           + (" and the queue started" if args.start else ""))
+
+@subcommand("report", help="write a campaign's morning report as one HTML page")
+def _report_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("uids", nargs="*", metavar="UID",
+                        help="report these runs instead of a campaign")
+    parser.add_argument("--data-dir", required=True, metavar="DIR",
+                        help="data directory of the store")
+    parser.add_argument("--campaign", metavar="ID",
+                        help="campaign id (default: the latest campaign in DIR)")
+    parser.add_argument("-o", "--output", required=True, metavar="FILE.html",
+                        help="the HTML file to write")
+
+
+@_report_arguments.runner
+def _report(args: argparse.Namespace) -> int:
+    from quietwell import InputError
+    from quietwell.report import write_report
+
+    if args.uids and args.campaign:
+        raise InputError("give --campaign ID or run UIDs, not both; see 'quietwell report "
+                         "--help'")
+    data = write_report(args.data_dir, args.output, campaign=args.campaign, uids=args.uids)
+    if data.running:
+        print(f"quietwell report: campaign {data.campaign_id} is still running; the report "
+              "shows its ledger so far", file=sys.stderr)
+    print(f"wrote {args.output}")
     return EXIT_OK
 
 
