@@ -373,6 +373,24 @@ def _run(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# --------------------------------------------------------------------------
+# runs (quietwell.results)
+
+
+@subcommand("runs", help="list the runs of a store: status, campaign, derived values")
+def _runs_arguments(parser: argparse.ArgumentParser) -> None:
+    from quietwell.results._cli import add_arguments
+
+    add_arguments(parser)
+
+
+@_runs_arguments.runner
+def _runs(args: argparse.Namespace) -> int:
+    from quietwell.results._cli import run
+
+    return run(args)
+
+
 if __name__ == "__main__":
     # Run the registry of the imported module, where other modules register too.
     from quietwell.cli import main as _main
