@@ -72,8 +72,7 @@ def build(data_dir: Path) -> list[Written]:
     """Write the runs of the table above into ``data_dir``; what was written."""
     from bluesky.utils import RequestAbort
 
-    from quietwell.plans import LabState, reach_state, reheating_cycles, thermal_calibration
-    from quietwell.plans import pressure_sweep
+    from quietwell.plans import LabState, pressure_sweep, reach_state, reheating_cycles, thermal_calibration
     from quietwell.session import open_session
 
     out: list[Written] = []
@@ -142,3 +141,14 @@ def build(data_dir: Path) -> list[Written]:
                                    settle_time=0.1, **det),
             "cobalt", "thermal_calibration", "success")
     return out
+
+
+_BUILT: dict[str, tuple[Path, list[Written]]] = {}
+
+
+def shared_store(tmp_path_factory) -> tuple[Path, list[Written]]:
+    """The store above, built once per test session (the results and README tests)."""
+    if "store" not in _BUILT:
+        d = tmp_path_factory.mktemp("results-store")
+        _BUILT["store"] = (d, build(d))
+    return _BUILT["store"]

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import asyncio
 import datetime as _dt
 import math
 import re
@@ -366,7 +365,7 @@ def runs_json(records: Sequence[RunRecord]) -> list[dict]:
     the epoch; a value that is not finite is ``null``)."""
     out = []
     for r in records:
-        t = (_dt.datetime.fromtimestamp(r.time, _dt.timezone.utc).isoformat()
+        t = (_dt.datetime.fromtimestamp(r.time, _dt.UTC).isoformat()
              if math.isfinite(r.time) else None)
         out.append({"uid": r.uid, "plan_name": r.plan_name, "setup": r.setup, "time": t,
                     "time_s": _json_value(r.time), "exit_status": r.exit_status,
