@@ -23,7 +23,9 @@ A URI is opened with tiled's client; its API key comes from an environment varia
 from __future__ import annotations
 
 import atexit
+import contextlib
 import dataclasses
+import io
 import os
 import shutil
 import tempfile
@@ -202,7 +204,9 @@ def _open_uri(uri: str, api_key_env: str) -> Any:
     key = os.environ.get(api_key_env) or None
     shown = _public_uri(uri)
     try:
-        return from_uri(uri, api_key=key) if key else from_uri(uri)
+        # tiled prints "Retrying…" while it retries a connection: one line is the rule
+        with contextlib.redirect_stderr(io.StringIO()):
+            return from_uri(uri, api_key=key) if key else from_uri(uri)
     except httpx.HTTPStatusError as exc:
         code = exc.response.status_code
         if code in (401, 403):
@@ -215,6 +219,14 @@ def _open_uri(uri: str, api_key_env: str) -> Any:
     except (httpx.HTTPError, OSError) as exc:
         raise InputError(f"--uri {shown} does not answer ({type(exc).__name__}); check the "
                          "address and that the tiled server runs") from None
+    except RuntimeError as exc:
+        if "api key" in str(exc).lower() or "authentica" in str(exc).lower():
+            where = (f"the API key in ${api_key_env}" if key
+                     else f"no API key (${api_key_env} is not set)")
+            raise InputError(f"--uri {shown}: the server refused {where}; set {api_key_env} "
+                             "to a key the server accepts") from None
+        raise InputError(f"--uri {shown}: not a tiled server ({type(exc).__name__}); give the "
+                         "URI of a tiled server (http://HOST:PORT/api/v1)") from None
     except Exception as exc:  # noqa: BLE001 - tiled's own errors; never echo the key
         raise InputError(f"--uri {shown}: not a tiled server ({type(exc).__name__}); give the "
                          "URI of a tiled server (http://HOST:PORT/api/v1)") from None

@@ -283,8 +283,8 @@ def find_runs(location: Any, *, setup: str | None = None, plan: str | None = Non
     api_key_env : str
         For a URI: the environment variable holding the API key.
     """
+    queries = _queries(setup, plan, campaign, since, uid, usable_only)  # refused first
     store = resolve(location, api_key_env=api_key_env)
-    queries = _queries(setup, plan, campaign, since, uid, usable_only)
     if isinstance(store, LocalStore):
         found = store.run(_local_search, queries)
     else:
