@@ -88,9 +88,9 @@ def build_store(data_dir: Path, n_campaigns: int = 25) -> float:
 _OLD = """
 import sys
 import quietwell
-from quietwell.results import list_runs, format_runs
+from quietwell.results import find_runs, format_runs
 client = quietwell.open_catalog(sys.argv[1])
-print(format_runs(list_runs(client)))
+print(format_runs(find_runs(client)))
 """
 
 

@@ -6,7 +6,6 @@ import datetime as _dt
 import math
 import re
 from collections.abc import Mapping, Sequence
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -256,8 +255,9 @@ def _client_summaries(client: Any, uids: Sequence[str]) -> dict[str, tuple]:
                     row[k] = _plain(values[-1])
         return uid, (row, units)
 
-    with ThreadPoolExecutor(max_workers=8) as pool:
-        return dict(pool.map(one, uids))
+    # One at a time: a tiled server on DuckDB storage shares one connection between
+    # its request threads, and concurrent table reads fail there (seen in this process).
+    return dict(one(u) for u in uids)
 
 
 def find_runs(location: Any, *, setup: str | None = None, plan: str | None = None,
