@@ -27,9 +27,10 @@ B (old)
     listing function, so only the way the catalog is opened differs.
 
 Beside them: the interpreter and imports alone (``python -c "import quietwell.results,
-tiled.client"``), and the listing of the same store while a writer holds it (a
-session open on DIR in this process: its catalog process holds ``catalog.lock`` and
-the event tables), to show that reading never waits for the writer.
+tiled.catalog, tiled.queries"``: tiled's catalog adapter imports dask and xarray),
+and the listing of the same store while a writer holds it (a session open on DIR in
+this process: its catalog process holds ``catalog.lock`` and the event tables), to show
+that reading never waits for the writer.
 
 Results are printed and written to ``bench/RESULTS-results.md``.
 """
@@ -117,7 +118,7 @@ def main(argv: list[str] | None = None) -> int:
     py = sys.executable
     new = [py, "-m", "quietwell.cli", "runs", "--data-dir", str(store)]
     old = [py, "-c", _OLD, str(store)]
-    imports = [py, "-c", "import quietwell.results, tiled.client"]
+    imports = [py, "-c", "import quietwell.results, tiled.catalog, tiled.queries"]
     times: dict[str, list[float]] = {"new": [], "old": [], "imports": []}
     outputs = {}
     for i in range(args.repeats):
