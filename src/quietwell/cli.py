@@ -510,6 +510,12 @@ def _queue_add(args: argparse.Namespace) -> int:
     print(CAUTIONS, file=sys.stderr)
     print(f"queued: campaign({item['args'][0]!r}) as item {item['item_uid']}"
           + (" and the queue started" if args.start else ""))
+    return EXIT_OK
+
+
+# --------------------------------------------------------------------------
+# report (quietwell.report)
+
 
 @subcommand("report", help="write a campaign's morning report as one HTML page")
 def _report_arguments(parser: argparse.ArgumentParser) -> None:
@@ -537,6 +543,24 @@ def _report(args: argparse.Namespace) -> int:
               "shows its ledger so far", file=sys.stderr)
     print(f"wrote {args.output}")
     return EXIT_OK
+
+
+# --------------------------------------------------------------------------
+# runs (quietwell.results)
+
+
+@subcommand("runs", help="list the runs of a store: status, campaign, derived values")
+def _runs_arguments(parser: argparse.ArgumentParser) -> None:
+    from quietwell.results._cli import add_arguments
+
+    add_arguments(parser)
+
+
+@_runs_arguments.runner
+def _runs(args: argparse.Namespace) -> int:
+    from quietwell.results._cli import run
+
+    return run(args)
 
 
 if __name__ == "__main__":
