@@ -89,6 +89,51 @@ def _check_runs(client, setup: str, data_dir: Path) -> None:
     assert set(runs) <= set(mine)
 
 
+def _queries_across_setups(lab: LabServer, env: dict, client, data: dict[str, Path]) -> None:
+    """`quietwell runs --uri` and the tables API answer per setup and across setups from
+    the catalog's own search: each setup's rows are exactly its completed runs (from its
+    ledger), with the values of each run's summary stream."""
+    from tiled.queries import Key
+
+    from quietwell.results import derived_table, heating_rates, particles
+
+    for name, data_dir in data.items():
+        cid, done = _ledger(data_dir)
+        res = _run(["runs", "--uri", lab.uri, "--api-key-env", "QWTEST_KEY", "--setup", name,
+                    "--json"], env)
+        assert res.returncode == 0, res.stderr
+        assert lab.key not in res.stdout + res.stderr
+        listed = json.loads(res.stdout)
+        assert {r["uid"] for r in listed} == set(client.search(Key("start.setup") == name))
+        assert {r["setup"] for r in listed} == {name}
+        assert set(done) <= {r["uid"] for r in listed if r["exit_status"] == "success"}
+        # heating rates versus pressure of the setup's reheating runs, with provenance
+        os.environ["QWTEST_KEY"] = lab.key
+        try:
+            table = heating_rates(lab.uri, setup=name, api_key_env="QWTEST_KEY")
+            every = derived_table(lab.uri, setup=name, api_key_env="QWTEST_KEY")
+        finally:
+            os.environ.pop("QWTEST_KEY", None)
+        reheats = {u for u in done
+                   if client[u].metadata["start"]["plan_name"] == "reheating_cycles"}
+        assert reheats
+        assert set(table["uid"]) == reheats and set(table["setup"]) == {name}
+        for _, row in table.iterrows():
+            stored = client[row["uid"]]["summary"].read()
+            for key in ("pressure", "heating_rate_x", "heating_rate_x_stderr"):
+                assert row[key] == float(stored[key].values[-1]), (name, key)
+        assert set(every["uid"]) == set(done)
+        assert table.attrs["units"]["heating_rate_x"]
+    # across setups: one table of the damping slope and radius per particle
+    os.environ["QWTEST_KEY"] = lab.key
+    try:
+        both = particles(lab.uri, api_key_env="QWTEST_KEY")
+    finally:
+        os.environ.pop("QWTEST_KEY", None)
+    assert set(both["setup"]) == set(data)
+    assert both["particle"].notna().all() and (both["radius_stderr"] > 0).all()
+
+
 @pytest.mark.slow  # two campaigns at once: 2-3 minutes on 2 shared cores
 def test_two_setups_at_once_every_run_and_record_lands_and_the_key_stays_secret(lab, tmp_path):
     """Two simulated setups run the campaign at the same time into one server: every run
@@ -112,6 +157,7 @@ def test_two_setups_at_once_every_run_and_record_lands_and_the_key_stays_secret(
 
     run = client.search(Key("start.setup") == "cobalt").values().last()
     assert run["primary"]["trace_x"].shape[0] >= 1
+    _queries_across_setups(lab, env, client, {n: d for n, (_, d) in procs.items()})
     # the key is in no file the setups produced, nor in their output
     leaks = []
     for root in [tmp_path, lab.raw]:
