@@ -1171,6 +1171,7 @@ def _fit_then_polish(prob: _Problem, theta0: np.ndarray, floor: float) -> _Fitte
     stages.append(prob)
     theta_start = theta0
     res = None
+    prob_used = stages[0]
     for i_stage, stage in enumerate(stages):
         if i_stage > 0 and res is not None and res.success:
             widths = np.exp(res.x[1:-1:3]) / _TWO_PI
