@@ -439,7 +439,9 @@ def test_predicted_bias_of_the_plain_model_matches_the_polish(monkeypatch, case)
     psd = welch_psd(x, fs, nperseg=nperseg, noverlap=nperseg // 2)
     predicted = []
     real_bias = _fit._plain_model_bias
-    monkeypatch.setattr(_fit, "_plain_model_bias", lambda *a: predicted.append(real_bias(*a)) or predicted[-1])
+    monkeypatch.setattr(
+        _fit, "_plain_model_bias", lambda *a: predicted.append(real_bias(*a)) or predicted[-1]
+    )
     auto = fit_psd(psd, peaks=[f0])
     monkeypatch.setattr(_fit, "_POLISH_ABOVE_BIAS", 1e300)
     plain = fit_psd(psd, peaks=[f0])

@@ -17,12 +17,18 @@ The rule
    bins per linewidth window leakage biases the width by far less than its error
    (the fit's plain model); below, the fit polishes with the window-exact model.
 3. Where 10 bins would leave fewer than 16 segments, the longest segment that still
-   leaves 16, as long as the line spans at least ``MIN_LINE_BINS`` = 3 bins there.
-4. Otherwise the shortest segment in which the line spans 3 bins, down to one
+   leaves 16, as long as the line spans at least ``SAFE_LINE_BINS`` = 4.5 bins there:
+   1.5 times the fit's refusal limit ``MIN_LINE_BINS`` = 3, so that a first-pass width
+   up to 1.5 times too large (noise in a K of about 14 spectrum) still leaves the line
+   3 bins or more (before, 3 bins of the estimate: a line estimated a little too wide
+   was refused at 2.7 bins).
+4. Otherwise the shortest segment in which the line spans 4.5 bins, down to one
    segment of the whole record (a Hann-windowed periodogram, K = 1: the window-exact
    model and the Gamma likelihood hold for any K).
-5. A line narrower than 3 bins of the whole record is refused, with the record
-   length that would resolve it.
+5. Where 4.5 bins would need more than the record, the whole record as one segment
+   (the finest resolution it has), as long as the line spans 3 bins there. Only a line
+   narrower than 3 bins of the whole record is refused, with the record length that
+   would resolve it.
 """
 
 from __future__ import annotations
@@ -39,6 +45,7 @@ __all__ = [
     "LINE_BINS",
     "MIN_LINE_BINS",
     "MIN_SEGMENTS",
+    "SAFE_LINE_BINS",
     "SegmentChoice",
     "choose_segment_length",
     "segment_length",
@@ -48,6 +55,9 @@ __all__ = [
 LINE_BINS = 10.0
 #: Fewest bins per linewidth the fit accepts (``fit_psd(min_linewidth_bins=3)``).
 MIN_LINE_BINS = 3.0
+#: Bins per estimated linewidth the rule keeps where it can (1.5 x ``MIN_LINE_BINS``:
+#: room for the first pass's width error).
+SAFE_LINE_BINS = 4.5
 #: Segments wanted in the record for the likelihood (31 with 50 % overlap).
 MIN_SEGMENTS = 16
 #: First pass: segments of ``n // DETECT_DIVISOR`` samples.
@@ -116,11 +126,13 @@ def segment_length(
     need_unbiased = _pow2_ceil(LINE_BINS * sample_rate / narrowest)
     if need_unbiased <= longest_averaged:
         return min(n, max(need_unbiased, SHORTEST_FOR_LINES))
-    need_resolved = required_samples(narrowest, sample_rate)
-    if need_resolved <= longest_averaged:
+    need_safe = math.ceil(SAFE_LINE_BINS * sample_rate / narrowest)
+    if need_safe <= longest_averaged:
         return longest_averaged
-    if need_resolved <= n:
-        return min(n, _pow2_ceil(need_resolved))
+    if need_safe <= n:
+        return min(n, _pow2_ceil(need_safe))
+    if required_samples(narrowest, sample_rate) <= n:
+        return n
     needed = required_samples(narrowest, sample_rate)
     raise UnresolvedPeakError(
         f"a line of width {narrowest:.3g} Hz is narrower than the whole record resolves "
