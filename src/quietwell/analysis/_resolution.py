@@ -13,9 +13,9 @@ The rule
 2. With the widths (FWHM in Hz) of the lines to fit, the shortest segment (a power
    of two, at least 256 samples) in which the narrowest line spans
    ``LINE_BINS`` = 10 bins, as long as at least ``MIN_SEGMENTS`` = 16 segments fit
-   in the record (the likelihood then has K of about 30 averages per bin). At 10
-   bins per linewidth window leakage biases the width by far less than its error
-   (the fit's plain model); below, the fit polishes with the window-exact model.
+   in the record (the likelihood then has K of about 30 averages per bin). Wherever
+   leakage or aliasing would bias the plain model's parameters by more than a tenth of
+   their errors, the fit polishes with the window-exact model (``_fit._POLISH_ABOVE_BIAS``).
 3. Where 10 bins would leave fewer than 16 segments, the longest segment that still
    leaves 16, as long as the line spans at least ``SAFE_LINE_BINS`` = 4.5 bins there:
    1.5 times the fit's refusal limit ``MIN_LINE_BINS`` = 3, so that a first-pass width
@@ -151,7 +151,8 @@ class SegmentChoice:
     nperseg : int
         Samples per segment.
     lines : tuple of (float, float)
-        ``(f0, fwhm)`` in Hz of the lines found by the first pass.
+        ``(f0, fwhm)`` in Hz of the lines found by the first pass (the width from its
+        likelihood fit where the record is short for the lines).
     psd : PSDResult or None
         The first pass's PSD when it has the chosen length (not computed twice).
     """
@@ -208,5 +209,35 @@ def choose_segment_length(
         lines = _line_widths(whole, peaks=peaks, band=band)
         if not lines:
             return SegmentChoice(nperseg=first, lines=(), psd=psd)
-    nperseg = segment_length(n, sample_rate, [w for _, w in lines])
+    widths = [w for _, w in lines]
+    nperseg = segment_length(n, sample_rate, widths)
+    if nperseg > first or min(widths) < LINE_BINS * sample_rate / nperseg:
+        # The record is short for these lines: the choice rests on the first pass's
+        # width, which its half-maximum crossing measures to a bin and biases high
+        # (-20 % .. +70 % for a line of 6 bins, K of about 14). Measure it again by the
+        # likelihood fit of the same spectrum (a few per cent) before choosing.
+        widths = _fitted_widths(psd, lines, widths)
+        lines = [(f0, w) for (f0, _), w in zip(lines, widths, strict=True)]
+        nperseg = segment_length(n, sample_rate, widths)
     return SegmentChoice(nperseg=nperseg, lines=tuple(lines), psd=psd if nperseg == first else None)
+
+
+def _fitted_widths(psd, lines, widths: list[float]) -> list[float]:
+    """FWHM in Hz of ``lines`` from the likelihood fit of ``psd`` (the first pass),
+    each no wider than its first-pass estimate in ``widths``; the estimates where the
+    fit fails."""
+    from quietwell._errors import QuietwellError
+    from quietwell.analysis._fit import fit_psd
+
+    try:
+        fit = fit_psd(psd, peaks=[f0 for f0, _ in lines], min_linewidth_bins=1.0,
+                      min_significance=0.0)
+    except QuietwellError:
+        return widths
+    fitted = sorted((pk.f0, pk.linewidth_hz) for pk in fit.peaks)
+    order = sorted(range(len(lines)), key=lambda i: lines[i][0])
+    out = list(widths)
+    for i, (_, w) in zip(order, fitted, strict=True):
+        if math.isfinite(w) and w > 0:
+            out[i] = min(out[i], w)
+    return out
