@@ -1198,7 +1198,7 @@ def _plain_model_bias(plain: _Problem, windowed: _Problem, theta: np.ndarray) ->
     the largest over the lines' ``(f0, gamma, area)`` (inf where it cannot be computed).
 
     The expected Welch bin is the sampled process's spectrum (the images
-    ``S(|f + m fs|)``, ``m = +-1, +-2``: aliasing, which matters near Nyquist and for the far
+    ``S(|f + m fs|)``, ``m = +-1``: aliasing, which matters near Nyquist and for the far
     tails of broad lines fitted over a wide band) seen through the window's spectral
     kernel ``|W|**2``, whose second moment ``sigma_w**2 = fs**2 (1 - c(1)) / (2 pi**2)``
     (``c`` the window's normalised autocorrelation; ``df**2 / 3`` for Hann) broadens
@@ -1220,7 +1220,7 @@ def _plain_model_bias(plain: _Problem, windowed: _Problem, theta: np.ndarray) ->
     half_var = 0.5 * _TWO_PI**2 * fs**2 * max(0.0, 1.0 - float(windowed.lag_window[1])) / (
         2.0 * math.pi**2
     )
-    images = [(m * _TWO_PI * fs + sign * om) ** 2 for m in (1, 2) for sign in (-1.0, 1.0)]
+    images = [(_TWO_PI * fs - om) ** 2, (_TWO_PI * fs + om) ** 2]
     delta = np.zeros_like(om)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         for j in range(f0.size):
