@@ -13,11 +13,13 @@ weak line on a strong floor, two close lines, a line near DC and one near Nyquis
 explicit peak counts, initial frequencies and bands, and the refusals with their
 messages.
 
-Two changes of issue 14 came after the split and change results on purpose: every
-Welch spectrum is polished with the window-exact model (before, only lines below 10
-bins), and the covariance is widened for the neighbouring bins of overlapping segments
-too. The comparison runs with both switched back (``_POLISH_BELOW_BINS = 10``,
-``_CROSS_SEGMENT_CORRELATION = False``), so that it checks the split itself.
+Two changes of issue 14 came after the split and change results on purpose: a Welch
+spectrum is polished with the window-exact model wherever the plain model's predicted
+bias exceeds a tenth of a standard error (before, only lines below 10 bins), and the
+covariance is widened for the neighbouring bins of overlapping segments too. The
+comparison runs with both switched back (``_POLISH_BELOW_BINS = 10``,
+``_POLISH_ABOVE_BIAS = inf``, ``_CROSS_SEGMENT_CORRELATION = False``), so that it checks
+the split itself.
 """
 
 from __future__ import annotations
@@ -107,6 +109,7 @@ def _outcome(fit, spectrum, options):
 @pytest.fixture(autouse=True)
 def _settings_before_issue_14(monkeypatch):
     monkeypatch.setattr(_fit, "_POLISH_BELOW_BINS", 10.0)
+    monkeypatch.setattr(_fit, "_POLISH_ABOVE_BIAS", math.inf)
     monkeypatch.setattr(_fit, "_CROSS_SEGMENT_CORRELATION", False)
 
 

@@ -15,6 +15,7 @@ from quietwell.analysis._resolution import (
     LINE_BINS,
     MIN_LINE_BINS,
     MIN_SEGMENTS,
+    SAFE_LINE_BINS,
     choose_segment_length,
     required_samples,
     segment_length,
@@ -37,13 +38,18 @@ def test_rule_branches():
     nper = segment_length(n, fs, [350.0])
     assert fs / nper <= 350.0 / LINE_BINS < 2 * fs / nper
     assert n // nper >= MIN_SEGMENTS
-    # a narrower line: 10 bins would leave fewer than 16 segments, 3 bins do not
-    nper = segment_length(n, fs, [30.0])
-    assert nper == n // MIN_SEGMENTS and 30.0 / (fs / nper) >= MIN_LINE_BINS
-    # narrower still: fewer segments, down to the whole record
-    nper = segment_length(n, fs, [2.0])
-    assert 2.0 / (fs / nper) >= MIN_LINE_BINS and nper <= n
+    # a narrower line: 10 bins would leave fewer than 16 segments, 4.5 bins do not
+    nper = segment_length(n, fs, [40.0])
+    assert nper == n // MIN_SEGMENTS and 40.0 / (fs / nper) >= SAFE_LINE_BINS
+    # narrower still: fewer segments (4.5 bins, room for the first pass's error),
+    # down to the whole record
+    nper = segment_length(n, fs, [5.0])
+    assert 5.0 / (fs / nper) >= SAFE_LINE_BINS and nper < n
+    assert 5.0 / (2 * fs / nper) < SAFE_LINE_BINS
+    assert segment_length(n, fs, [4.5 * fs / n]) == n
+    # between 3 and 4.5 bins of the whole record: the whole record, not a refusal
     assert segment_length(n, fs, [3.0 * fs / n]) == n
+    assert segment_length(n, fs, [4.0 * fs / n]) == n
     # broad lines: short segments, never below 256 samples
     assert segment_length(n, fs, [1e6]) == 256
 
@@ -107,3 +113,39 @@ def test_issue_record_b_is_accepted(tmp_path, capsys):
     doc = _fit_json(tmp_path, "b.npy", rec, 5e6, capsys)
     for chan, (f0, a, b) in zip(doc["channels"], truth, strict=True):
         _check_line(chan, f0, TWO_PI * 900.0, a, b)
+
+
+def _never_refused(draws, seed):
+    """A 900 Hz line in 2**18 samples at 5 MHz (19 Hz bins of the whole record: 47 bins
+    per linewidth) through the first pass, the rule and the fit, ``draws`` noise
+    realisations of the exactly discretised oscillator (tests/oscillator_records.py),
+    as ``quietwell analyze --peaks 1`` runs them (the automatic search's false alarms
+    are tested in tests/test_detection.py)."""
+    from quietwell.analysis import fit_psd, welch_psd
+
+    fs, n, f0, fwhm = 5e6, 2**18, 150e3, 900.0
+    rng = np.random.default_rng(seed)
+    bins = []
+    for _ in range(draws):
+        x = oscillator_record(n, fs, f0, TWO_PI * fwhm, 1e-6, 1e-13, rng)
+        choice = choose_segment_length(x, fs, peaks=1)
+        psd = welch_psd(x, fs, nperseg=choice.nperseg, noverlap=choice.nperseg // 2, workers=1)
+        fit = fit_psd(psd, peaks=1)  # raises if refused
+        (pk,) = fit.peaks
+        assert abs(pk.f0 - f0) < 5 * pk.f0_stderr
+        bins.append(pk.gamma / TWO_PI / psd.resolution_hz)
+    # the true line spans at least 4.5 bins of the chosen segments less the width's noise
+    assert min(bins) > MIN_LINE_BINS
+    return bins
+
+
+def test_a_line_the_record_resolves_is_not_refused():
+    _never_refused(20, seed=11)
+
+
+@pytest.mark.slow
+def test_a_line_the_record_resolves_is_never_refused_over_200_draws():
+    # before: 3 bins of the first pass's width, and a width estimated a little high
+    # refused this line at 2.7 bins
+    bins = _never_refused(200, seed=12)
+    assert np.median(bins) >= SAFE_LINE_BINS * 0.9

@@ -66,7 +66,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help=(
             "samples per Welch segment (default: chosen per channel from the record: the "
             "shortest segment in which the narrowest line found spans 10 bins with at least "
-            "16 segments, fewer bins or segments only where the record needs it); "
+            "16 segments, fewer bins (down to 4.5) or segments only where the record needs "
+            "it); "
             "50%% overlap, Hann window"
         ),
     )

@@ -13,16 +13,22 @@ The rule
 2. With the widths (FWHM in Hz) of the lines to fit, the shortest segment (a power
    of two, at least 256 samples) in which the narrowest line spans
    ``LINE_BINS`` = 10 bins, as long as at least ``MIN_SEGMENTS`` = 16 segments fit
-   in the record (the likelihood then has K of about 30 averages per bin). At 10
-   bins per linewidth window leakage biases the width by far less than its error
-   (the fit's plain model); below, the fit polishes with the window-exact model.
+   in the record (the likelihood then has K of about 30 averages per bin). Wherever
+   leakage or aliasing would bias the plain model's parameters by more than a tenth of
+   their errors, the fit polishes with the window-exact model (``_fit._POLISH_ABOVE_BIAS``).
 3. Where 10 bins would leave fewer than 16 segments, the longest segment that still
-   leaves 16, as long as the line spans at least ``MIN_LINE_BINS`` = 3 bins there.
-4. Otherwise the shortest segment in which the line spans 3 bins, down to one
+   leaves 16, as long as the line spans at least ``SAFE_LINE_BINS`` = 4.5 bins there:
+   1.5 times the fit's refusal limit ``MIN_LINE_BINS`` = 3, so that a first-pass width
+   up to 1.5 times too large (noise in a K of about 14 spectrum) still leaves the line
+   3 bins or more (before, 3 bins of the estimate: a line estimated a little too wide
+   was refused at 2.7 bins).
+4. Otherwise the shortest segment in which the line spans 4.5 bins, down to one
    segment of the whole record (a Hann-windowed periodogram, K = 1: the window-exact
    model and the Gamma likelihood hold for any K).
-5. A line narrower than 3 bins of the whole record is refused, with the record
-   length that would resolve it.
+5. Where 4.5 bins would need more than the record, the whole record as one segment
+   (the finest resolution it has), as long as the line spans 3 bins there. Only a line
+   narrower than 3 bins of the whole record is refused, with the record length that
+   would resolve it.
 """
 
 from __future__ import annotations
@@ -39,6 +45,7 @@ __all__ = [
     "LINE_BINS",
     "MIN_LINE_BINS",
     "MIN_SEGMENTS",
+    "SAFE_LINE_BINS",
     "SegmentChoice",
     "choose_segment_length",
     "segment_length",
@@ -48,6 +55,9 @@ __all__ = [
 LINE_BINS = 10.0
 #: Fewest bins per linewidth the fit accepts (``fit_psd(min_linewidth_bins=3)``).
 MIN_LINE_BINS = 3.0
+#: Bins per estimated linewidth the rule keeps where it can (1.5 x ``MIN_LINE_BINS``:
+#: room for the first pass's width error).
+SAFE_LINE_BINS = 4.5
 #: Segments wanted in the record for the likelihood (31 with 50 % overlap).
 MIN_SEGMENTS = 16
 #: First pass: segments of ``n // DETECT_DIVISOR`` samples.
@@ -116,11 +126,13 @@ def segment_length(
     need_unbiased = _pow2_ceil(LINE_BINS * sample_rate / narrowest)
     if need_unbiased <= longest_averaged:
         return min(n, max(need_unbiased, SHORTEST_FOR_LINES))
-    need_resolved = required_samples(narrowest, sample_rate)
-    if need_resolved <= longest_averaged:
+    need_safe = math.ceil(SAFE_LINE_BINS * sample_rate / narrowest)
+    if need_safe <= longest_averaged:
         return longest_averaged
-    if need_resolved <= n:
-        return min(n, _pow2_ceil(need_resolved))
+    if need_safe <= n:
+        return min(n, _pow2_ceil(need_safe))
+    if required_samples(narrowest, sample_rate) <= n:
+        return n
     needed = required_samples(narrowest, sample_rate)
     raise UnresolvedPeakError(
         f"a line of width {narrowest:.3g} Hz is narrower than the whole record resolves "
@@ -139,7 +151,8 @@ class SegmentChoice:
     nperseg : int
         Samples per segment.
     lines : tuple of (float, float)
-        ``(f0, fwhm)`` in Hz of the lines found by the first pass.
+        ``(f0, fwhm)`` in Hz of the lines found by the first pass (the width from its
+        likelihood fit where the record is short for the lines).
     psd : PSDResult or None
         The first pass's PSD when it has the chosen length (not computed twice).
     """
@@ -196,5 +209,35 @@ def choose_segment_length(
         lines = _line_widths(whole, peaks=peaks, band=band)
         if not lines:
             return SegmentChoice(nperseg=first, lines=(), psd=psd)
-    nperseg = segment_length(n, sample_rate, [w for _, w in lines])
+    widths = [w for _, w in lines]
+    nperseg = segment_length(n, sample_rate, widths)
+    if nperseg > first or min(widths) < LINE_BINS * sample_rate / nperseg:
+        # The record is short for these lines: the choice rests on the first pass's
+        # width, which its half-maximum crossing measures to a bin and biases high
+        # (-20 % .. +70 % for a line of 6 bins, K of about 14). Measure it again by the
+        # likelihood fit of the same spectrum (a few per cent) before choosing.
+        widths = _fitted_widths(psd, lines, widths)
+        lines = [(f0, w) for (f0, _), w in zip(lines, widths, strict=True)]
+        nperseg = segment_length(n, sample_rate, widths)
     return SegmentChoice(nperseg=nperseg, lines=tuple(lines), psd=psd if nperseg == first else None)
+
+
+def _fitted_widths(psd, lines, widths: list[float]) -> list[float]:
+    """FWHM in Hz of ``lines`` from the likelihood fit of ``psd`` (the first pass),
+    each no wider than its first-pass estimate in ``widths``; the estimates where the
+    fit fails."""
+    from quietwell._errors import QuietwellError
+    from quietwell.analysis._fit import fit_psd
+
+    try:
+        fit = fit_psd(psd, peaks=[f0 for f0, _ in lines], min_linewidth_bins=1.0,
+                      min_significance=0.0)
+    except QuietwellError:
+        return widths
+    fitted = sorted((pk.f0, pk.linewidth_hz) for pk in fit.peaks)
+    order = sorted(range(len(lines)), key=lambda i: lines[i][0])
+    out = list(widths)
+    for i, (_, w) in zip(order, fitted, strict=True):
+        if math.isfinite(w) and w > 0:
+            out[i] = min(out[i], w)
+    return out
