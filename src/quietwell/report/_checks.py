@@ -9,9 +9,10 @@
 * predictions: measured heating rates beside the predicted ones, the minimum occupation
   beside its prediction.
 
-A reduced chi-square is judged by its p-value from ``scipy.special.chdtrc`` (the chi-square survival function) (``ok`` above
-0.01); a difference by its size in combined standard errors (``ok`` within 2, ``check``
-within 3, ``disagrees`` beyond: common practice, no source).
+A reduced chi-square is judged by its p-value from ``scipy.special.chdtrc`` (the
+chi-square survival function; ``ok`` above 0.01); a difference by its size in combined
+standard errors (``ok`` within 2, ``check`` within 3, ``disagrees`` beyond: common
+practice, no source).
 """
 
 from __future__ import annotations

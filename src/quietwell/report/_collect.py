@@ -313,7 +313,7 @@ def _attach(data: ReportData, store: Mapping[str, Any], *, running: bool = False
             if r.status == "in progress":
                 r.status = gone
             continue
-        _fill(r, run)
+        _fill(r, run, running=running)
     for r in data.runs:
         if r.status == "in progress":
             r.status = gone
@@ -326,14 +326,17 @@ def _attach(data: ReportData, store: Mapping[str, Any], *, running: bool = False
     data.monitors = _merge_monitors(data)
 
 
-def _fill(r: RunEntry, run: Any) -> None:
+def _fill(r: RunEntry, run: Any, *, running: bool = False) -> None:
+    """Documents and summary of ``r`` from the store. The status too, where the ledger
+    missed it (a superseded mark, a stop document), unless the campaign still runs: its
+    ledger is then current, and the store only adds documents and values."""
     r.client = run
     md = run.metadata
     r.start = dict(md.get("start") or {})
     r.stop = dict(md.get("stop") or {})
-    if md.get("superseded_by") and r.status != "superseded":
+    if not running and md.get("superseded_by") and r.status != "superseded":
         r.status, r.superseded_by = "superseded", str(md["superseded_by"])
-    if r.status == "in progress":  # the ledger missed its end; the stop document has it
+    if r.status == "in progress" and not running:  # the ledger missed its end
         status = r.stop.get("exit_status")
         if status == "success":
             r.status = "completed"
