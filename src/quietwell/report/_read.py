@@ -70,6 +70,25 @@ def open_runs(data_dir: str | Path) -> Mapping[str, Any]:
     if not has_catalog(path):
         raise InputError(f"--data-dir {data_dir}: no catalog/catalog.db (no run reached the "
                          "store); give the data directory a campaign ran into")
+    import logging
+    import warnings
+
+    import tiled.server.app  # noqa: F401 - it sets its logger's level on import
+
     from ..results import open_store
 
-    return open_store(path)
+    # The in-process server is an implementation detail of reading: its start-up line
+    # ("Tiled version ...", logged at INFO) and starlette's notice about its test client
+    # are not the report's to print (a report prints one line, or one error line).
+    server_log = logging.getLogger("tiled.server.app")
+    level = server_log.level
+    server_log.setLevel(logging.WARNING)
+    try:
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=".*starlette.testclient.*")
+            client = open_store(path)
+            client.context  # noqa: B018 - the app starts here, inside the filters
+            len(client)
+    finally:
+        server_log.setLevel(level)
+    return client
