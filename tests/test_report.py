@@ -7,7 +7,10 @@ completed ones (one store for the module). The report of that store is loaded in
 headless Chromium (one browser for the module): no console error, no network request,
 every picture drawn with a size, and every number of the values table equal to the
 summary stream read back through the catalog's own server (``quietwell.open_catalog``),
-independently of the report's in-process reader.
+independently of the report's in-process reader. Those tests are marked ``slow`` (the
+campaign takes a minute or two). The fast test loads a real report in Chromium too: that
+of a campaign still running before any of its runs reached the store, from a ledger
+recorded by a run of the same campaign file (tests/data/report-ledger-running.jsonl).
 """
 
 from __future__ import annotations
@@ -30,6 +33,7 @@ from quietwell.campaign._ledger import campaign_dirs, read_ledger
 
 ROOT = Path(__file__).resolve().parents[1]
 CAMPAIGN = ROOT / "tests" / "data" / "report-campaign.toml"
+LEDGER = ROOT / "tests" / "data" / "report-ledger-running.jsonl"
 PICTURES = {"psd", "damping", "gain", "reheating", "heating", "sidebands"}
 
 
@@ -171,6 +175,7 @@ def _stored_summaries(client, uids: list[str]) -> dict[str, dict]:
     return out
 
 
+@pytest.mark.slow
 def test_report_in_a_browser(report: Path, store: Path, catalog, browser,
                              tmp_path: Path) -> None:
     entries = _ledger(store)
@@ -237,6 +242,7 @@ def test_report_in_a_browser(report: Path, store: Path, catalog, browser,
     print(f"screenshot: {shot}")
 
 
+@pytest.mark.slow
 def test_figures_for_a_notebook(store: Path, catalog) -> None:
     """Each picture is a public function of a run (or a table) returning a Figure; here
     of runs read through the catalog's server, as a notebook may open them."""
@@ -287,6 +293,7 @@ def _one_line_error(done: subprocess.CompletedProcess, *words: str) -> None:
         assert w in lines[0], lines[0]
 
 
+@pytest.mark.slow
 def test_bad_input_is_one_line(tmp_path: Path, store: Path) -> None:
     """On the command line: one line and exit status 2 (two cases); the rest of the
     checks of input are the same InputError in Python, each one line naming the value."""
@@ -336,6 +343,7 @@ def _report_while_held(live: Path, out: Path) -> subprocess.CompletedProcess:
         return _cli("report", "--data-dir", str(live), "-o", str(out))
 
 
+@pytest.mark.slow
 def test_running_campaign_is_reported_as_it_stands(tmp_path: Path, store: Path, catalog,
                                                    browser) -> None:
     """A campaign whose process still holds the store: the page says so, shows the steps as
@@ -393,3 +401,43 @@ def test_running_campaign_is_reported_as_it_stands(tmp_path: Path, store: Path, 
     assert f'data-left-out="{killed}" data-status="aborted"' in section
     assert "interrupted by the user" in section
     assert f'data-uid="{killed}" data-key' not in page
+
+
+def test_running_campaign_without_a_store_in_a_browser(tmp_path: Path, browser) -> None:
+    """Fast: a campaign whose process holds the directory and whose runs have not reached
+    the store yet is reported from its ledger; the page loads in Chromium with no console
+    error and no request, with the steps as the ledger has them and the values of the
+    completed steps as the ledger recorded them."""
+    from quietwell.report import write_report
+
+    entries = read_ledger(LEDGER)
+    live = tmp_path / "live"
+    folder = live / "campaigns" / entries[0]["campaign_id"]
+    folder.mkdir(parents=True)
+    shutil.copyfile(LEDGER, folder / "ledger.jsonl")
+    (live / "catalog").mkdir()
+    out = tmp_path / "live.html"
+    with open(live / "catalog" / "catalog.lock", "w") as lock:  # as the catalog process does
+        fcntl.flock(lock.fileno(), fcntl.LOCK_EX)
+        lock.write("4242")
+        lock.flush()
+        data = write_report(live, out)
+    assert data.running_pid == "4242"
+    assert _load(browser, out) == []  # no picture without a store
+    assert browser.title.startswith("report-small")
+    rows = browser.execute_script(
+        "return Array.from(document.querySelectorAll('tr[data-step]'))"
+        ".map(r => [r.dataset.step, r.dataset.status]);")
+    assert dict(rows) == {"thermal": "completed", "pumpdown": "completed", "gains": "running",
+                          "reheat-1e-6": "never reached", "reheat-1e-7": "never reached",
+                          "reheat-1e-8": "never reached", "sidebands": "never reached"}
+    assert "still running (process 4242" in browser.find_element("css selector", "main").text
+    cells = browser.execute_script(_CELLS)
+    done = [e for e in entries if e["event"] == "done"]
+    expected = {(e["uid"], k): float(v) for e in done for k, v in e["summary"].items()
+                if isinstance(v, (int, float)) and not isinstance(v, bool)
+                and not k.endswith("_stderr")}
+    shown = {(c["uid"], c["key"]): float(c["value"]) for c in cells if c["value"] is not None}
+    assert shown.keys() == expected.keys() and expected
+    for key, value in expected.items():
+        assert shown[key] == value or (math.isnan(value) and math.isnan(shown[key])), key
