@@ -540,7 +540,7 @@ def _report(args: argparse.Namespace) -> int:
     data = write_report(args.data_dir, args.output, campaign=args.campaign, uids=args.uids)
     if data.running:
         print(f"quietwell report: campaign {data.campaign_id} is still running; the report "
-              "shows its ledger so far", file=sys.stderr)
+              "shows it as it stands", file=sys.stderr)
     print(f"wrote {args.output}")
     return EXIT_OK
 

@@ -5,14 +5,15 @@
 function here that takes a run (``client[uid]``) or a table and returns a matplotlib
 Figure, so a notebook shows the same pictures::
 
-    import quietwell
     from quietwell import report
+    from quietwell.results import open_store
 
-    client = quietwell.open_catalog("quietwell-data")
-    run = client.values().last()          # e.g. a gain sweep
+    client = open_store("quietwell-data")  # in-process, read-only; or quietwell.open_catalog
+    run = client.values().last()           # e.g. a gain sweep
     report.gain_figure(run)
 
-The report reads the store through :func:`quietwell.report._read.open_runs` alone.
+The report reads the store through :func:`quietwell.report._read.open_runs` alone, and
+each stream of a run once (:mod:`quietwell.report._streams`).
 """
 
 from ._collect import ReportData, RunEntry, StepEntry, collect, summary_values

@@ -9,9 +9,10 @@
 * predictions: measured heating rates beside the predicted ones, the minimum occupation
   beside its prediction.
 
-A reduced chi-square is judged by its p-value from ``scipy.stats.chi2`` (``ok`` above
-0.01); a difference by its size in combined standard errors (``ok`` within 2, ``check``
-within 3, ``disagrees`` beyond: common practice, no source).
+A reduced chi-square is judged by its p-value from ``scipy.special.chdtrc`` (the
+chi-square survival function; ``ok`` above 0.01); a difference by its size in combined
+standard errors (``ok`` within 2, ``check`` within 3, ``disagrees`` beyond: common
+practice, no source).
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ from typing import Any
 import numpy as np
 
 from ..physics import AXES
+from . import _streams
 
 __all__ = ["Check", "chi2_verdict", "z_verdict"]
 
@@ -46,11 +48,11 @@ class Check:
 def chi2_verdict(reduced: float, dof: int) -> str:
     """``ok`` when a reduced chi-square this large has probability > 0.01 (``chi2`` with
     ``dof`` degrees of freedom), ``check`` otherwise; ``n/a`` without degrees of freedom."""
-    from scipy import stats
+    from scipy.special import chdtrc  # chi2.sf without importing scipy.stats
 
     if not (math.isfinite(reduced) and dof >= 1):
         return "n/a"
-    p = float(stats.chi2.sf(reduced * dof, dof))
+    p = float(chdtrc(dof, reduced * dof))
     return "ok" if p > 0.01 else "check"
 
 
@@ -110,7 +112,7 @@ def _feedback_off_records(sweep: Any) -> int:
     loss = float((start.get("setup_description") or {}).get("trap", {}).get("loss_pressure",
                                                                              math.nan))
     try:
-        p = np.asarray(sweep.client["primary"]["pressure"].read(), dtype=float)
+        p = _streams.primary_column(sweep.client, "pressure").astype(float)
     except Exception:  # noqa: BLE001 - only the degrees of freedom are lost
         return 0
     return int(np.sum(p >= loss)) if math.isfinite(loss) else int(p.size)

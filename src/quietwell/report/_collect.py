@@ -16,9 +16,10 @@ from typing import Any
 
 import numpy as np
 
-from .._errors import InputError
+from .._errors import InputError, QuietwellError
 from ..campaign._ledger import campaign_dirs, read_ledger
-from ._read import StoreBusy, check_data_dir, open_runs, store_holder
+from . import _streams
+from ._read import check_data_dir, has_catalog, open_runs, store_holder
 
 __all__ = ["ReportData", "RunEntry", "StepEntry", "collect", "summary_values",
            "USABLE", "LEFT_OUT"]
@@ -114,10 +115,10 @@ def summary_values(run: Any) -> tuple[dict[str, Any], dict[str, str]]:
 
     ``{}`` for a run without one (a run that ended before its summary).
     """
-    if "summary" not in run:
+    if not _streams.has(run, "summary"):
         return {}, {}
-    stream = run["summary"]
-    ds = stream.read()
+    stream = _streams.stream(run, "summary")
+    ds = _streams.read(run, "summary")
     values = {k: _first(ds[k].values) for k in ds.data_vars}
     keys = dict(stream.metadata.get("data_keys", {}))
     units = {k: str(keys.get(k, {}).get("units", "")) for k in values}
@@ -175,31 +176,42 @@ def collect(data_dir: str | Path, *, campaign: str | None = None,
         data.running_pid = holder
         data.notes.append(
             f"The campaign is still running (process {holder} holds the data directory). "
-            "This report shows its ledger as it stands: step statuses, monitor events and "
-            "the summaries of completed steps. Plots and checks need the store: write the "
-            "report again when the campaign has ended.")
-        for r in data.runs:
-            if r.status == "in progress":
-                r.status = "running"
-        for s in data.steps:
-            if s.attempts:
-                s.status = s.attempts[-1].status
-        data.monitors = _merge_monitors(data)
+            "This report shows it as it stands: the runs the store holds so far, the step "
+            "in progress as running, and pictures and checks of the completed steps only. "
+            "Write the report again when the campaign has ended.")
+    if not has_catalog(path):
+        if holder is None:
+            raise InputError(f"--data-dir {path}: no catalog/catalog.db (no run reached the "
+                             "store); give the data directory a campaign ran into")
+        _ledger_only(data)
         return data
     try:
         store = open_runs(path)
-    except StoreBusy as exc:
-        data.running_pid = exc.pid
-        data.notes.append(f"The store is in use by another quietwell process ({exc.pid}); "
+    except QuietwellError as exc:
+        if holder is None:
+            raise
+        data.notes.append(f"The store could not be read as the campaign writes it ({exc}); "
                           "this report shows the ledger only.")
+        _ledger_only(data)
         return data
-    _attach(data, store)
-    if data.end_status == "":
+    _attach(data, store, running=holder is not None)
+    if data.end_status == "" and holder is None:
         data.notes.append(
             "The campaign did not end: its process stopped during a step, and the run of "
             "that step is marked interrupted. Resume it with: quietwell run --resume "
             f"--data-dir {path}")
     return data
+
+
+def _ledger_only(data: ReportData) -> None:
+    """A running campaign whose store cannot be read yet: statuses from the ledger."""
+    for r in data.runs:
+        if r.status == "in progress":
+            r.status = "running"
+    for s in data.steps:
+        if s.attempts:
+            s.status = s.attempts[-1].status
+    data.monitors = _merge_monitors(data)
 
 
 def _read_head(data: ReportData, entries: list[dict]) -> None:
@@ -280,38 +292,51 @@ def _runs_from_ledger(entries: list[dict]) -> tuple[list[RunEntry], list[StepEnt
     return order, steps
 
 
-def _attach(data: ReportData, store: Mapping[str, Any]) -> None:
-    """Fill each run's client, start and stop documents and summary from the store."""
+def _attach(data: ReportData, store: Mapping[str, Any], *, running: bool = False) -> None:
+    """Fill each run's client, start and stop documents and summary from the store.
+
+    ``running``: the campaign's process still holds the directory, so a run the ledger
+    has in progress is running (not interrupted), and one not in the store yet is no
+    loss.
+    """
+    gone = "running" if running else "interrupted"
     for r in data.runs:
         if not r.uid:
             continue
         try:
             run = store[r.uid]
         except KeyError:
-            if r.status in ("completed",):
+            if r.status in ("completed",) and not running:
                 data.notes.append(f"Run {r.uid} (step {r.step_id}) is in the ledger but not "
                                   f"in the store; rebuild it with: quietwell recover "
                                   f"--data-dir {data.data_dir}")
             if r.status == "in progress":
-                r.status = "interrupted"
+                r.status = gone
             continue
-        _fill(r, run)
+        _fill(r, run, running=running)
     for r in data.runs:
         if r.status == "in progress":
-            r.status = "interrupted"
-            r.reason = r.reason or "the process ended during the run"
+            r.status = gone
+            if not running:
+                r.reason = r.reason or "the process ended during the run"
+    for s in data.steps:
+        if s.attempts:
+            s.status = s.attempts[-1].status
     _versions(data)
     data.monitors = _merge_monitors(data)
 
 
-def _fill(r: RunEntry, run: Any) -> None:
+def _fill(r: RunEntry, run: Any, *, running: bool = False) -> None:
+    """Documents and summary of ``r`` from the store. The status too, where the ledger
+    missed it (a superseded mark, a stop document), unless the campaign still runs: its
+    ledger is then current, and the store only adds documents and values."""
     r.client = run
     md = run.metadata
     r.start = dict(md.get("start") or {})
     r.stop = dict(md.get("stop") or {})
-    if md.get("superseded_by") and r.status != "superseded":
+    if not running and md.get("superseded_by") and r.status != "superseded":
         r.status, r.superseded_by = "superseded", str(md["superseded_by"])
-    if r.status == "in progress":  # the ledger missed its end; the stop document has it
+    if r.status == "in progress" and not running:  # the ledger missed its end
         status = r.stop.get("exit_status")
         if status == "success":
             r.status = "completed"
@@ -340,10 +365,10 @@ def _merge_monitors(data: ReportData) -> list[dict[str, Any]]:
     out: list[dict[str, Any]] = []
     seen = set()
     for r in data.runs:
-        if r.client is None or "monitor" not in r.client:
+        if r.client is None or not _streams.has(r.client, "monitor"):
             continue
-        stream = r.client["monitor"]
-        ds = stream.read()
+        stream = _streams.stream(r.client, "monitor")
+        ds = _streams.read(r.client, "monitor")
         keys = dict(stream.metadata.get("data_keys", {}))
         units = str(keys.get("value", {}).get("units", ""))
         n = ds.sizes.get("time", 0)

@@ -458,7 +458,7 @@ def _left_out(data: ReportData, out: list[str]) -> None:
 
 def render_report(data: ReportData) -> str:
     """The HTML text of the report of ``data`` (see :func:`~quietwell.report.collect`)."""
-    pics, checks = ([], []) if data.running else _pictures_and_checks(data)
+    pics, checks = _pictures_and_checks(data)
     out = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
            '<meta name="viewport" content="width=device-width, initial-scale=1">',
            f"<title>{_e(data.campaign_name or 'runs')} · quietwell report</title>",
@@ -467,9 +467,8 @@ def render_report(data: ReportData) -> str:
     _steps(data, out)
     _monitors(data, out)
     _values(data, out)
-    if not data.running:
-        _check_table(checks, out)
-        _figures(pics, out)
+    _check_table(checks, out)
+    _figures(pics, out)
     _left_out(data, out)
     out.append(f"<footer>Written by quietwell report on {_e(_when(_now()))}. The data "
                "directory holds the raw records and every fit; open it with "

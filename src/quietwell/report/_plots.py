@@ -21,6 +21,7 @@ from ..analysis import PSDResult, SpectrumFit, fit_psd, welch_psd
 from ..analysis._derived import LinearFit, fit_line
 from ..analysis._resolution import segment_length
 from ..physics import AXES, cold_damping_occupation, reheating_curve
+from . import _streams
 
 __all__ = [
     "AXIS_COLOURS",
@@ -66,11 +67,22 @@ _STYLE = {
 
 
 def _figure(rows: int, cols: int, *, width: float = 9.0, height: float = 3.0,
-            **kw: Any):
+            top: float = 0.32, gap: float = 0.62, **kw: Any):
+    """A figure of ``rows`` x ``cols`` axes with fixed margins in inches (``top`` above
+    the axes for their titles, ``gap`` between columns for tick labels).
+
+    Fixed margins, not matplotlib's constrained layout: that measures every text
+    twice per drawing and took half of the report's drawing time.
+    """
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=(width, height), layout="constrained")
+    fig = Figure(figsize=(width, height))
     axs = fig.subplots(rows, cols, squeeze=False, **kw)
+    left, right, bottom = 0.78, 0.12, 0.46
+    col_w = (width - left - right - gap * (cols - 1)) / cols
+    fig.subplots_adjust(left=left / width, right=1 - right / width, bottom=bottom / height,
+                        top=1 - top / height, wspace=gap / col_w,
+                        hspace=0.12 if rows > 1 else 0.2)
     return fig, axs
 
 
@@ -115,21 +127,27 @@ def _column(ds: Any, key: str) -> np.ndarray:
     return np.asarray(ds[key].values)
 
 
-def as_array(value: Any) -> np.ndarray:
-    """A stored array field as a float array.
+def as_array(value: Any, name: str = "array field") -> np.ndarray:
+    """A stored array field (one event's value) as a 1-d float array.
 
-    The event tables of the embedded store return array fields as their numpy text
-    (``"[ 1.5  2. ]"``); a list or array passes through. A summarised text (``...``)
-    cannot be read back and gives an empty array.
+    A list or array passes through. Text (numpy's printed form, as a table read with
+    dask's ``dataframe.convert-string`` on returns it) is refused with an
+    :class:`InputError`: it is rounded, and summarised with ``...`` when long, so
+    reading it back would lose data. Read the stream with
+    :func:`quietwell.report._streams.read`.
     """
-    if isinstance(value, (bytes, np.bytes_)):
-        value = value.decode()
-    if isinstance(value, str):
-        text = value.strip().strip("[]").replace(",", " ")
-        if "..." in text:
-            return np.array([])
-        return np.array([float(t) for t in text.split()], dtype=float)
-    return np.asarray(value, dtype=float).reshape(-1)
+    if isinstance(value, (bytes, np.bytes_, str)):
+        text = value.decode(errors="replace") if isinstance(value, (bytes, np.bytes_)) else value
+        shown = " ".join(str(text).split())
+        shown = shown if len(shown) <= 40 else shown[:37] + "..."
+        raise InputError(f"{name}: the stored array came back as text ({shown!r}), which "
+                         "loses digits; read the stream with dask's "
+                         "dataframe.convert-string off (quietwell.report._streams.read)")
+    try:
+        return np.asarray(value, dtype=float).reshape(-1)
+    except (TypeError, ValueError):
+        raise InputError(f"{name}: {type(value).__name__} is not an array of numbers; "
+                         "give a run whose stream holds this field as an array") from None
 
 
 def _summary(run: Any) -> dict[str, Any]:
@@ -154,7 +172,7 @@ def _modes(run: Any) -> list[float]:
 
 
 def _trace(run: Any, key: str, record: int) -> np.ndarray:
-    prim = run["primary"]
+    prim = _streams.stream(run, "primary")
     if key not in prim:
         raise InputError(f"run {_start(run).get('uid', '?')} has no {key} trace in its primary "
                          "stream; choose a run that recorded it")
@@ -189,8 +207,7 @@ def psd_fits(run: Any, record: int = 0, *, band_fraction: float = 0.4
     PSD in V**2/Hz, frequencies in Hz.
     """
     modes = _modes(run)
-    prim = run["primary"]
-    fs = float(np.asarray(prim["sample_rate"].read())[record])
+    fs = float(_streams.primary_column(run, "sample_rate")[record])
     out = {}
     for i, axis in enumerate(AXES):
         trace = _trace(run, f"trace_{axis}", record)
@@ -223,7 +240,8 @@ def psd_figure(run: Any, record: int = 0, *, spectra: Mapping[str, AxisSpectrum]
     fit).
     """
     spectra = spectra if spectra is not None else psd_fits(run, record)
-    fig, axs = _figure(2, 3, height=4.2, sharex="col", gridspec_kw={"height_ratios": [3, 1.2]})
+    fig, axs = _figure(2, 3, height=4.2, top=0.48, sharex="col",
+                       gridspec_kw={"height_ratios": [3, 1.2]})
     for j, axis in enumerate(AXES):
         sp = spectra[axis]
         f, p = sp.psd.frequency, np.asarray(sp.psd.psd)
@@ -262,10 +280,9 @@ def damping_figure(run: Any):
     (``damping_slope_x|y|z``) and the cold-damping gain of the records below the loss
     pressure."""
     _plan(run, "pressure_sweep")
-    fits = run["fits"].read()
-    prim = run["primary"]
-    seq = np.asarray(prim["seq_num"].read())
-    pressure = dict(zip(seq.tolist(), np.asarray(prim["pressure"].read(), dtype=float),
+    fits = _streams.read(run, "fits")
+    seq = _streams.primary_column(run, "seq_num")
+    pressure = dict(zip(seq.tolist(), _streams.primary_column(run, "pressure").astype(float),
                         strict=False))
     recs = _column(fits, "record_seq_num")
     p = np.array([pressure.get(int(s), math.nan) for s in recs])
@@ -313,13 +330,11 @@ def gain_points(run: Any, axis: str) -> tuple[np.ndarray, np.ndarray, np.ndarray
     and its error, as the summary combined them."""
     from ..plans._common import weighted_mean
 
-    fits = run["fits"].read()
-    prim = run["primary"]
+    fits = _streams.read(run, "fits")
     gains_of = _record_gains(run)
     recs = _column(fits, "record_seq_num")
     n, e = _column(fits, f"occupation_{axis}"), _column(fits, f"occupation_{axis}_stderr")
     ok = _column(fits, f"fit_status_{axis}") == "ok"
-    del prim
     out_g, out_n, out_e = [], [], []
     for gain in sorted({gains_of.get(int(r), math.nan) for r in recs} - {math.nan}):
         sel = ok & np.array([gains_of.get(int(r)) == gain for r in recs])
@@ -339,7 +354,7 @@ def _record_gains(run: Any) -> dict[int, float]:
     args = _start(run).get("plan_args", {})
     gains = [float(g) for g in args.get("gains", [])]
     per = int(args.get("records_per_step", 1))
-    seq = np.asarray(run["primary"]["seq_num"].read()).astype(int)
+    seq = _streams.primary_column(run, "seq_num").astype(int)
     return {int(s): gains[(int(s) - 1) // per] for s in seq if (int(s) - 1) // per < len(gains)}
 
 
@@ -395,15 +410,15 @@ def reheating_ensemble(run: Any, axis: str) -> tuple[np.ndarray, np.ndarray, np.
     """Time after feedback off (s), ensemble mean and spread of the occupation (quanta) over
     the cycles of a reheating run, and the number of cycles: the run's last ``ensemble``
     event (the mean over every fitted cycle)."""
-    fits = run["fits"].read()
+    fits = _streams.read(run, "fits")
     times = _column(fits, "envelope_time")
-    if not times.size:
+    if not times.size or not _streams.has(run, "ensemble"):
         raise InputError(f"run {_start(run).get('uid', '?')} has no energy envelopes; choose a "
                          "reheating_cycles run")
-    t = as_array(times[0])
-    ens = run["ensemble"].read()
-    mean = as_array(_column(ens, f"ensemble_mean_{axis}")[-1])
-    spread = as_array(_column(ens, f"ensemble_spread_{axis}")[-1])
+    t = as_array(times[0], "fits envelope_time")
+    ens = _streams.read(run, "ensemble")
+    mean = as_array(_column(ens, f"ensemble_mean_{axis}")[-1], f"ensemble_mean_{axis}")
+    spread = as_array(_column(ens, f"ensemble_spread_{axis}")[-1], f"ensemble_spread_{axis}")
     cycles = int(np.asarray(_column(ens, "cycles_in_mean"))[-1])
     return t, mean, spread, cycles
 
@@ -548,8 +563,7 @@ def sideband_fits(run: Any, record: int = 0, *, band_fraction: float = 0.3) -> S
     modes = _modes(run)
     axis = str(start.get("plan_args", {}).get("axis", "z"))
     f_mode = modes[AXES.index(axis)]
-    prim = run["primary"]
-    fs = float(np.asarray(prim["het_sample_rate"].read())[record])
+    fs = float(_streams.primary_column(run, "het_sample_rate")[record])
     trace = _trace(run, "het_trace_beat", record)
     nperseg = segment_length(trace.size)
     psd = welch_psd(trace, fs, nperseg=nperseg, noverlap=nperseg // 2)
@@ -579,7 +593,7 @@ def sideband_figure(run: Any, record: int = 0, *, spectrum: SidebandSpectrum | N
     summary (``n = R/(1 - R)``)."""
     sp = spectrum if spectrum is not None else sideband_fits(run, record)
     summary = _summary(run)
-    fig, axs = _figure(1, 2, height=3.0, sharey=True)
+    fig, axs = _figure(1, 2, height=3.0, top=0.5, sharey=True)
     colour = AXIS_COLOURS.get(sp.axis, _INK)
     f, p = sp.psd.frequency, np.asarray(sp.psd.psd)
     for ax, (name, (band, fit)) in zip(axs[0], (("Stokes", sp.stokes),

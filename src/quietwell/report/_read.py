@@ -1,34 +1,20 @@
 """How the report reaches a data directory: one small function to swap.
 
-:func:`open_runs` is the only place the report opens the store. It returns a mapping
-of run uid to the tiled run client (``run["primary"|"fits"|"summary"|...]``,
-``run.metadata["start"]``); a faster read-only reader that returns the same kind of
-mapping can replace it without touching the rest of the report.
+:func:`open_runs` is the only place the report opens the store. It returns the tiled
+client of :func:`quietwell.results.open_store`: the data directory read in this process,
+read-only (no server, no catalog process, never the writer's ``catalog.lock``), so a
+campaign that is still writing to the directory is read as it stands.
 """
 
 from __future__ import annotations
 
-import os
-import time
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from .._errors import InputError, QuietwellError
+from .._errors import InputError
 
-__all__ = ["open_runs", "store_holder", "check_data_dir", "StoreBusy"]
-
-#: Seconds to wait for a store that another process is just closing.
-_RELEASE_WAIT_S = 5.0
-
-
-class StoreBusy(QuietwellError):
-    """Another quietwell process (a campaign, or a session that opened the store) holds
-    the data directory; ``pid`` is that process's id as it wrote it, or ``""``."""
-
-    def __init__(self, message: str, pid: str) -> None:
-        super().__init__(message)
-        self.pid = pid
+__all__ = ["open_runs", "store_holder", "check_data_dir"]
 
 
 def check_data_dir(data_dir: str | Path) -> Path:
@@ -51,7 +37,8 @@ def store_holder(data_dir: Path) -> str | None:
     """The pid (as text) of the process holding the store of ``data_dir``, else None.
 
     The catalog process keeps an exclusive ``flock`` on ``catalog/catalog.lock`` for
-    its life and writes its parent's pid into it (:mod:`quietwell.store._serve`).
+    its life and writes its parent's pid into it (:mod:`quietwell.store._serve`). Only
+    tested here (a non-blocking lock, released at once), never kept.
     """
     import fcntl
 
@@ -68,24 +55,40 @@ def store_holder(data_dir: Path) -> str | None:
     return None
 
 
+def has_catalog(data_dir: Path) -> bool:
+    return (data_dir / "catalog" / "catalog.db").is_file()
+
+
 def open_runs(data_dir: str | Path) -> Mapping[str, Any]:
     """Uid -> tiled run client of every run in the store at ``data_dir``.
 
-    Raises :class:`InputError` for a directory without a store and :class:`StoreBusy`
-    while another process holds it (a running campaign).
+    Read in this process and read-only (:func:`quietwell.results.open_store`), also while
+    a campaign's catalog process holds the directory. Raises :class:`InputError` for a
+    directory without a store.
     """
     path = check_data_dir(data_dir)
-    if not (path / "catalog" / "catalog.db").exists():
+    if not has_catalog(path):
         raise InputError(f"--data-dir {data_dir}: no catalog/catalog.db (no run reached the "
                          "store); give the data directory a campaign ran into")
-    holder = store_holder(path)
-    deadline = time.monotonic() + _RELEASE_WAIT_S
-    while holder is not None and holder != str(os.getpid()) and time.monotonic() < deadline:
-        time.sleep(0.2)  # a process that just ended may still be closing its catalog
-        holder = store_holder(path)
-    if holder is not None and holder != str(os.getpid()):
-        raise StoreBusy(f"--data-dir {data_dir} is in use by another quietwell process (pid "
-                        f"{holder}); wait until it ends, or stop it", holder)
-    from ..store import open_catalog
+    import logging
+    import warnings
 
-    return open_catalog(path)
+    import tiled.server.app  # noqa: F401 - it sets its logger's level on import
+
+    from ..results import open_store
+
+    # The in-process server is an implementation detail of reading: its start-up line
+    # ("Tiled version ...", logged at INFO) and starlette's notice about its test client
+    # are not the report's to print (a report prints one line, or one error line).
+    server_log = logging.getLogger("tiled.server.app")
+    level = server_log.level
+    server_log.setLevel(logging.WARNING)
+    try:
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=".*starlette.testclient.*")
+            client = open_store(path)
+            client.context  # noqa: B018 - the app starts here, inside the filters
+            len(client)
+    finally:
+        server_log.setLevel(level)
+    return client
