@@ -25,7 +25,7 @@ from pathlib import Path
 import pytest
 
 from quietwell.campaign import campaign_dirs, read_ledger
-from quietwell.store import close_catalog
+from quietwell.store import close_catalog, open_catalog
 
 sys.path.insert(0, str(Path(__file__).parent))
 from lab_server import LabServer, server_profile  # noqa: E402
@@ -361,7 +361,7 @@ def test_campaign_plan_aborted_in_its_runengine_resumes_when_run_again(tmp_path)
     entries = _ledger(data)
     assert [e["step"] for e in entries if e["event"] == "attempt"] == [0, 1, 1, 2]
     assert entries[-1]["status"] == "completed"
-    runs = _catalog_runs(data, entries[0]["campaign_id"])
+    runs = _catalog_runs(open_catalog(data), entries[0]["campaign_id"])
     try:
         assert all(len(_complete(rs)) == 1 for rs in runs.values()) and len(runs[1]) == 2
         (cut,) = [r for r in runs[1] if r not in _complete(runs[1])]
