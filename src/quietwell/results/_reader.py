@@ -88,11 +88,16 @@ class LocalStore:
                              "catalog/catalog.db); give the data directory a campaign or "
                              "`quietwell demo` wrote to, or a tiled server with --uri")
         os.environ.setdefault("TILED_HDF5_SWMR_DEFAULT", "1")
-        _register_event_tables(self.data_dir / "catalog")
+        #: copies of the event tables, shared by tiled's adapter and the direct listing
+        self.snapshots = _Snapshots(self.data_dir / "catalog" / "storage.duckdb")
+        self._registered = False
 
     def _make_adapter(self) -> Any:
         from tiled.catalog import from_uri
 
+        if not self._registered:  # tiled is imported only when its adapter is wanted
+            _register_event_tables(self.data_dir / "catalog", self.snapshots)
+            self._registered = True
         db = self.data_dir / "catalog" / "catalog.db"
         # mode=ro: SQLite refuses every write, so this reader cannot change the catalog.
         return from_uri(f"sqlite:///file:{db}?mode=ro&uri=true",
@@ -239,14 +244,12 @@ def _open_uri(uri: str, api_key_env: str) -> Any:
 _REGISTERED: set[str] = set()
 
 
-def _register_event_tables(catalog_dir: Path) -> None:
-    """Make tiled read the event tables (DuckDB) read-only, or a consistent copy of them
-    while a writer holds the file."""
+def _register_event_tables(catalog_dir: Path, snapshots: _Snapshots) -> None:
+    """Make tiled read the event tables (DuckDB) read-only, from a consistent copy."""
     import sqlite3
 
     from tiled.storage import EmbeddedSQLStorage, acquire_storage
 
-    path = catalog_dir / "storage.duckdb"
     db = sqlite3.connect(f"file:{catalog_dir / 'catalog.db'}?mode=ro", uri=True, timeout=30)
     try:  # the URI the writer recorded (its own path for the file)
         uris = [u for (u,) in db.execute(
@@ -255,8 +258,6 @@ def _register_event_tables(catalog_dir: Path) -> None:
         uris = []
     finally:
         db.close()
-
-    snapshots = _Snapshots(path)
 
     @dataclasses.dataclass(frozen=True)
     class ReadOnlyDuckDB(EmbeddedSQLStorage):
@@ -296,22 +297,30 @@ class _Snapshots:
         return tuple((p.stat().st_size, p.stat().st_mtime_ns) if p.exists() else None
                      for p in (self.path, self.wal))
 
+    def current(self) -> Path | None:
+        """The path of a copy as the file is now (None: the store has no event table)."""
+        with self._lock:
+            if not self.path.exists():
+                return None
+            if self._copy is None or self._stat() != self._state:
+                self._take()
+            return self._copy
+
     def connect(self) -> Any:
+        """An ADBC connection (tiled's kind) to the current copy, read-only."""
         import adbc_driver_duckdb
         import adbc_driver_manager
         import adbc_driver_manager.dbapi as dbapi
 
-        with self._lock:
-            if not self.path.exists():  # a store with no event table yet
-                db = adbc_driver_manager.AdbcDatabase(
-                    driver=adbc_driver_duckdb.driver_path(), entrypoint="duckdb_adbc_init")
-                return dbapi.Connection(db, adbc_driver_manager.AdbcConnection(db))
-            if self._copy is None or self._stat() != self._state:
-                self._take()
+        copy = self.current()
+        if copy is None:  # a store with no event table yet
             db = adbc_driver_manager.AdbcDatabase(
-                driver=adbc_driver_duckdb.driver_path(), entrypoint="duckdb_adbc_init",
-                path=str(self._copy), access_mode="READ_ONLY")
+                driver=adbc_driver_duckdb.driver_path(), entrypoint="duckdb_adbc_init")
             return dbapi.Connection(db, adbc_driver_manager.AdbcConnection(db))
+        db = adbc_driver_manager.AdbcDatabase(
+            driver=adbc_driver_duckdb.driver_path(), entrypoint="duckdb_adbc_init",
+            path=str(copy), access_mode="READ_ONLY")
+        return dbapi.Connection(db, adbc_driver_manager.AdbcConnection(db))
 
     def _take(self, attempts: int = 20) -> None:
         if self._folder is None:
