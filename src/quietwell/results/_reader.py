@@ -13,6 +13,9 @@ or ``tiled catalog init``:
   of the file and its write-ahead log (taken again when either changed, and until
   neither changed while it was copied: 3 MB for 100 runs), in a temporary folder
   removed at exit. The writer's ``catalog.lock`` is never taken;
+* the listing (:mod:`._catalog_sql`) reads the catalog and a copy of the event tables
+  with :mod:`sqlite3` and :mod:`duckdb` alone, without importing tiled (whose catalog
+  adapter takes seconds to import); the client and the fallback use tiled's adapter;
 * the raw traces are read from ``DIR/raw`` (the only readable file storage), in HDF5's
   single-writer-multiple-reader mode, so a file being written is readable too.
 
@@ -63,9 +66,11 @@ class LocalStore:
     """A quietwell data directory opened read-only in this process.
 
     :attr:`client` is the standard tiled client (made with ``Context.from_app``, so
-    everything tiled's client does works, raw traces included); the listing and the
-    tables go to the catalog adapter directly, which is several times faster than
-    even an in-process request per run.
+    everything tiled's client does works, raw traces included). The listing and the
+    tables read the catalog's files directly (:mod:`._catalog_sql`, no tiled import),
+    or, for a catalog of another layout, go to tiled's catalog adapter
+    (:meth:`run`), which is still several times faster than a request per run.
+    Nothing of tiled is imported until :meth:`run` or :attr:`client` is used.
     """
 
     def __init__(self, data_dir: str | Path) -> None:
