@@ -324,12 +324,13 @@ def find_runs(location: Any, *, setup: str | None = None, plan: str | None = Non
         except _catalog_sql.SchemaMismatch as exc:
             _notice_fallback(store, exc)
         else:
-            records = sorted((_record(k, md) for k, md, _ in found),
-                             key=lambda r: (r.time, r.uid))
-            got = {k: s for k, _, s in found}
-            return [r if got.get(r.uid) is None else
-                    dataclasses.replace(r, summary=got[r.uid][0], units=got[r.uid][1])
-                    for r in records]
+            records = []
+            for key, md, got in found:
+                rec = _record(key, md)
+                if got is not None:
+                    rec = dataclasses.replace(rec, summary=got[0], units=got[1])
+                records.append(rec)
+            return sorted(records, key=lambda r: (r.time, r.uid))
     queries = _queries(setup, plan, campaign, since_s, prefix, usable_only)
     if isinstance(store, LocalStore):
         found = store.run(_local_search, queries)
