@@ -15,22 +15,26 @@ DIR)`` and short plans: 25 "campaigns" of four runs each, a ``thermal_calibratio
 then one pump-down for the 75 reheating runs). The store is then closed: no
 catalog process holds it.
 
-Two paths, each a fresh interpreter timed from just before its start to its exit,
+Paths, each a fresh interpreter timed from just before its start to its exit,
 interleaved A B A B ... (``--repeats`` pairs, the minimum and median reported):
 
 A (new)
-    ``quietwell runs --data-dir DIR``: the read-only in-process reader
-    (:func:`quietwell.results.open_store`), one search of the catalog, the summaries.
-B (old)
+    ``quietwell runs --data-dir DIR``: the catalog's SQLite file read directly
+    (read-only) and the summaries from a copy of the event tables
+    (``quietwell/results/_catalog_sql.py``); tiled is not imported.
+B (previous)
+    the same command with ``QUIETWELL_READ_VIA_TILED=1``: the same read-only files
+    read through tiled's catalog adapter in this process (what ``quietwell runs`` did
+    before; also the fallback when the catalog's layout is not the expected one).
+C (``--with-server``; slow)
     the same listing through ``quietwell.open_catalog(DIR)`` (an embedded tiled server
-    in a catalog process, what every reader used before): ``python -c`` with the same
-    listing function, so only the way the catalog is opened differs.
+    in a catalog process): ``python -c`` with the same listing function.
 
-Beside them: the interpreter and imports alone (``python -c "import quietwell.results,
-tiled.catalog, tiled.queries"``: tiled's catalog adapter imports dask and xarray),
-and the listing of the same store while a writer holds it (a session open on DIR in
-this process: its catalog process holds ``catalog.lock`` and the event tables), to show
-that reading never waits for the writer.
+Beside them: the interpreter and the imports of each path alone (A: ``quietwell.results,
+sqlite3, duckdb``; B: ``quietwell.results, tiled.catalog, tiled.queries``: tiled's
+catalog adapter imports dask and xarray), and A while a writer holds the store (a
+session open on DIR in this process: its catalog process holds ``catalog.lock`` and the
+event tables), to show that reading never waits for the writer.
 
 Results are printed and written to ``bench/RESULTS-results.md``.
 """
@@ -105,10 +109,16 @@ def _timed(cmd: list[str]) -> tuple[float, str]:
     return dt, out.stdout
 
 
+def _load(avg: tuple[float, float, float]) -> str:
+    return "/".join(f"{x:.1f}" for x in avg)
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--store", type=Path, help="data directory of the bench store (reused)")
     ap.add_argument("--repeats", type=int, default=5)
+    ap.add_argument("--with-server", action="store_true",
+                    help="also time C, the listing through an embedded tiled server (slow)")
     args = ap.parse_args(argv)
     store = args.store or Path(tempfile.gettempdir()) / "quietwell-bench-results"
     built = None
@@ -116,21 +126,26 @@ def main(argv: list[str] | None = None) -> int:
         print(f"building a store of 100 runs in {store} ...", flush=True)
         built = build_store(store)
     py = sys.executable
+    load_before = os.getloadavg()
     new = [py, "-m", "quietwell.cli", "runs", "--data-dir", str(store)]
-    old = [py, "-c", _OLD, str(store)]
-    imports = [py, "-c", "import quietwell.results, tiled.catalog, tiled.queries"]
-    times: dict[str, list[float]] = {"new": [], "old": [], "imports": []}
+    prev = ["env", "QUIETWELL_READ_VIA_TILED=1", *new]
+    server = [py, "-c", _OLD, str(store)]
+    imports_new = [py, "-c", "import quietwell.results, quietwell.results._catalog_sql, duckdb"]
+    imports_prev = [py, "-c", "import quietwell.results, tiled.catalog, tiled.queries"]
+    paths = [("new", new), ("prev", prev)] + ([("server", server)] if args.with_server else [])
+    times: dict[str, list[float]] = {name: [] for name, _ in paths}
+    times |= {"imports_new": [], "imports_prev": []}
     outputs = {}
     for i in range(args.repeats):
-        order = (("new", new), ("old", old)) if i % 2 == 0 else (("old", old), ("new", new))
-        for name, cmd in (*order, ("imports", imports)):
+        order = paths if i % 2 == 0 else paths[::-1]
+        for name, cmd in (*order, ("imports_new", imports_new), ("imports_prev", imports_prev)):
             dt, out = _timed(cmd)
             times[name].append(dt)
             outputs[name] = out
-        print(f"  round {i + 1}: new {times['new'][-1]:.2f} s, old {times['old'][-1]:.2f} s, "
-              f"imports {times['imports'][-1]:.2f} s", flush=True)
+        print(f"  round {i + 1}: " + ", ".join(f"{k} {v[-1]:.2f} s" for k, v in times.items()),
+              flush=True)
     n_lines = len(outputs["new"].strip().splitlines())
-    same = outputs["new"] == outputs["old"]
+    same = all(outputs[name] == outputs["new"] for name, _ in paths)
     # while a writer holds the store
     sys.path[:0] = [str(ROOT / "src"), str(ROOT / "sim_devices")]
     from quietwell.session import open_session
@@ -139,29 +154,40 @@ def main(argv: list[str] | None = None) -> int:
     with open_session("amber", store):
         for _ in range(max(2, args.repeats // 2)):
             busy.append(_timed(new)[0])
+    load_after = os.getloadavg()
 
     def fig(xs):
         return f"min {min(xs):.2f} s, median {statistics.median(xs):.2f} s"
 
-    ratio = [o / n for o, n in zip(times["old"], times["new"], strict=True)]
+    ratio = [o / n for o, n in zip(times["prev"], times["new"], strict=True)]
     rows = [
         ("runs listed (lines of `quietwell runs`)", f"{n_lines - 1} runs", ""),
         ("A: `quietwell runs --data-dir DIR` (cold process)", fig(times["new"]),
          "PASS" if statistics.median(times["new"]) < 3.0 else "FAIL"),
-        ("B: the same listing through `open_catalog` (embedded server)", fig(times["old"]), ""),
+        ("B: the same through tiled's catalog adapter (previous path)", fig(times["prev"]), ""),
         ("B / A (per pair)", f"median {statistics.median(ratio):.1f}x, "
                             f"range {min(ratio):.1f}x-{max(ratio):.1f}x", ""),
-        ("interpreter + imports alone", fig(times["imports"]), ""),
+    ]
+    if args.with_server:
+        rows.append(("C: the same listing through `open_catalog` (embedded server)",
+                     fig(times["server"]), ""))
+    rows += [
+        ("interpreter + imports of A (quietwell.results, sqlite3, duckdb)",
+         fig(times["imports_new"]), ""),
+        ("interpreter + imports of B (quietwell.results, tiled.catalog)",
+         fig(times["imports_prev"]), ""),
         ("A while a writer's catalog process holds DIR", fig(busy),
          "PASS" if statistics.median(busy) < 3.0 else "FAIL"),
-        ("A and B print the same listing", str(same), "PASS" if same else "FAIL"),
+        ("all paths print the same listing", str(same), "PASS" if same else "FAIL"),
     ]
     if built is not None:
         rows.append(("building the store (once, not timed against anything)",
                      f"{built:.0f} s", ""))
     lines = ["# Results listing: a store of 100 runs from a cold process", "",
-             f"`python bench/results_bench.py --repeats {args.repeats}`; store {store}; "
-             f"{os.cpu_count()} cores, shared with other jobs.", "",
+             f"`python bench/results_bench.py --repeats {args.repeats}"
+             f"{' --with-server' if args.with_server else ''}`; store {store}; "
+             f"{os.cpu_count()} cores, shared with other jobs; load average (1, 5, 15 min) "
+             f"{_load(load_before)} before, {_load(load_after)} after.", "",
              "| what | measured | goal < 3 s |", "|---|---|---|"]
     lines += [f"| {a} | {b} | {c} |" for a, b, c in rows]
     text = "\n".join(lines) + "\n"

@@ -76,24 +76,134 @@ def test_listing_holds_exactly_the_runs_written_with_their_statuses(store, capsy
     assert "heating_rate_x=" in lines[3] and "quanta/s" in lines[3]
 
 
-def test_summaries_read_in_one_query_per_table_equal_tiled_client_reads(store):
-    # the listing's batched read of the event tables against tiled's own client (HTTP
-    # requests served in this process), run by run, value by value
+def _tiled_client_records(client, queries):
+    """The runs as tiled's own client reads them (HTTP requests served in this process),
+    written out field by field without quietwell's reader: the reference the direct
+    reading of the catalog files must equal."""
+    node = client
+    for q in queries:
+        node = node.search(q)
+    out = {}
+    for uid, run in node.items():
+        start, stop = run.metadata["start"], run.metadata.get("stop") or {}
+        summary, units = {}, {}
+        if "summary" in run:
+            stream = run["summary"]
+            units = {k: str(v.get("units") or "")
+                     for k, v in stream.metadata["data_keys"].items()}
+            ds = stream.read()
+            for k in units:
+                if k in ds and len(ds[k].values):
+                    v = ds[k].values[-1]
+                    summary[k] = v.item() if hasattr(v, "item") else v
+        out[uid] = {
+            "uid": start["uid"], "plan_name": start.get("plan_name"),
+            "setup": start.get("setup"), "time": start["time"],
+            "exit_status": stop.get("exit_status") or "unfinished",
+            "reason": stop.get("reason") or "", "campaign_id": start.get("campaign_id"),
+            "campaign_step": start.get("campaign_step"),
+            "campaign_attempt": start.get("campaign_attempt"),
+            "campaign_step_id": start.get("campaign_step_id"),
+            "superseded_by": run.metadata.get("superseded_by"),
+            "particle": start.get("particle"), "summary": summary, "units": units}
+    return out
+
+
+def _filter_cases(written):
+    from tiled.queries import Key, KeyPresent, Like
+
+    return [
+        ({}, []),
+        ({"setup": "amber"}, [Key("start.setup") == "amber"]),
+        ({"setup": "cobalt", "plan": "thermal_calibration"},
+         [Key("start.setup") == "cobalt", Key("start.plan_name") == "thermal_calibration"]),
+        ({"campaign": "c-one"}, [Key("start.campaign_id") == "c-one"]),
+        ({"uid": written[3].uid[:6].upper()}, [Like("start.uid", written[3].uid[:6] + "%")]),
+        ({"usable_only": True}, [Key("stop.exit_status") == "success",
+                                 KeyPresent("superseded_by", False)]),
+        ({"plan": "reheating_cycles", "usable_only": True},
+         [Key("start.plan_name") == "reheating_cycles", Key("stop.exit_status") == "success",
+          KeyPresent("superseded_by", False)]),
+    ]
+
+
+def test_direct_listing_equals_tiled_clients_reading_field_by_field(store):
+    # The listing reads tiled's catalog files itself (quietwell/results/_catalog_sql.py,
+    # written for the pinned tiled 0.2.20): every field of every run, for every filter,
+    # must equal what tiled's own client reads and finds with tiled's own search, so
+    # that a change of tiled's layout fails here rather than misleading a user.
+    import dataclasses
+
+    from tiled.queries import Key
+
     d, written = store
     client = open_store(d)
-    for rec in find_runs(d):
-        run = client[rec.uid]
-        assert run.metadata["stop"]["exit_status"] == rec.exit_status
-        if "summary" not in run:
-            assert rec.summary == {}
-            continue
-        ds = run["summary"].read()
-        units = {k: v["units"] for k, v in run["summary"].metadata["data_keys"].items()}
-        assert dict(rec.units) == units
-        for k in units:
-            v = ds[k].values[-1]
-            v = v.item() if hasattr(v, "item") else v
-            assert rec.summary[k] == v or _close(rec.summary[k], v), (rec.uid, k)
+    cases = _filter_cases(written)
+    t3 = find_runs(d, summaries=False)[3].time
+    cases.append(({"since": t3}, [Key("start.time") >= t3]))
+    for kwargs, queries in cases:
+        got = find_runs(d, **kwargs)
+        want = _tiled_client_records(client, queries)
+        assert sorted(r.uid for r in got) == sorted(want), kwargs
+        assert got, kwargs
+        for rec in got:
+            fields = dataclasses.asdict(rec)
+            ref = want[rec.uid]
+            assert set(fields) == set(ref)
+            for name, value in ref.items():
+                if name == "summary":
+                    assert set(fields["summary"]) == set(value), (rec.uid, kwargs)
+                    for k, v in value.items():
+                        g = fields["summary"][k]
+                        assert type(g) is type(v) and (g == v or _close(g, v)), (rec.uid, k)
+                else:
+                    assert fields[name] == value, (rec.uid, name, kwargs)
+    # the summaries exist at all (a store of empty summaries would pass the above)
+    assert find_runs(d)[0].summary["calibration_x"] > 0
+
+
+def test_direct_listing_is_pinned_to_tileds_catalog_revision():
+    # the revision the direct reading was written for is the one the installed tiled
+    # writes; a tiled upgrade changes it and fails here (re-check _catalog_sql's
+    # assumptions, then update EXPECTED_REVISION)
+    from tiled.catalog.core import REQUIRED_REVISION
+
+    from quietwell.results._catalog_sql import EXPECTED_REVISION
+
+    assert REQUIRED_REVISION == EXPECTED_REVISION
+
+
+def test_an_unknown_catalog_layout_falls_back_to_tiled_with_one_line(store, monkeypatch, capsys):
+    import dataclasses
+
+    from quietwell.results import _catalog_sql, _runs
+
+    d, written = store
+    direct = find_runs(d)
+    monkeypatch.setattr(_catalog_sql, "EXPECTED_REVISION", "000000000000")
+    monkeypatch.setattr(_runs, "_FELL_BACK", set())
+    via_tiled = find_runs(d)
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1
+    assert "000000000000" in err and "tiled's catalog adapter" in err and str(d) in err
+    assert [dataclasses.asdict(r) for r in via_tiled] == [dataclasses.asdict(r) for r in direct]
+    find_runs(d, setup="amber")  # noticed once a store
+    assert capsys.readouterr().err == ""
+
+
+def test_listing_a_data_directory_does_not_import_tiled(store):
+    # what makes `quietwell runs --data-dir` fast: tiled's catalog adapter imports dask
+    # and xarray (seconds); the direct reading needs sqlite3 and duckdb only
+    d, written = store
+    code = ("import sys; from quietwell.results import find_runs; "
+            f"rs = find_runs({str(d)!r}); assert len(rs) == {len(written)}; "
+            "print(sorted({m.split('.')[0] for m in sys.modules} & "
+            "{'tiled', 'dask', 'xarray', 'pandas', 'sqlalchemy'}))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=120, env={**os.environ, "PYTHONPATH": os.pathsep.join(
+                             [str(ROOT / "src"), str(ROOT / "sim_devices")])})
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "[]"
 
 
 @pytest.mark.parametrize(("argv", "select"), [

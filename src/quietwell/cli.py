@@ -78,7 +78,10 @@ def subcommand(name: str, *, help: str):  # noqa: A002 - mirrors argparse
     return register
 
 
-def _build_parser() -> argparse.ArgumentParser:
+def _build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The parser; with ``only``, the arguments of that subcommand alone (the others'
+    may import modules for their defaults, which a command that does not use them
+    should not wait for)."""
     parser = _Parser(
         prog="quietwell",
         description="Characterise an optically levitated nanoparticle.",
@@ -87,7 +90,8 @@ def _build_parser() -> argparse.ArgumentParser:
     sub.required = True
     for entry in SUBCOMMANDS.values():
         p = sub.add_parser(entry.name, help=entry.help, description=entry.help)
-        entry.add_arguments(p)
+        if only is None or entry.name == only:
+            entry.add_arguments(p)
     return parser
 
 
@@ -99,8 +103,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     int
         0 on success, 2 on bad input, 1 on an unexpected error.
     """
-    parser = _build_parser()
     argv = list(sys.argv[1:] if argv is None else argv)
+    parser = _build_parser(argv[0] if argv and argv[0] in SUBCOMMANDS else None)
     prog = "quietwell"
     if argv and argv[0] in SUBCOMMANDS:
         prog = f"quietwell {argv[0]}"

@@ -4,7 +4,8 @@
   no catalog process; also while a campaign writes to it), or a tiled server by URI,
   and returns the standard tiled client.
 * :func:`find_runs` finds runs with the catalog's own search (setup, plan, campaign,
-  time) and reads their ``summary`` streams; :func:`format_runs` and
+  time) and reads their ``summary`` streams (for a data directory straight from the
+  catalog's files, see :mod:`._catalog_sql`); :func:`format_runs` and
   :func:`runs_json` print them (``quietwell runs``).
 * :func:`derived_table`, :func:`heating_rates`, :func:`calibrations` and
   :func:`particles` return pandas DataFrames of derived values with their errors and

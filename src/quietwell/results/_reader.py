@@ -13,6 +13,9 @@ or ``tiled catalog init``:
   of the file and its write-ahead log (taken again when either changed, and until
   neither changed while it was copied: 3 MB for 100 runs), in a temporary folder
   removed at exit. The writer's ``catalog.lock`` is never taken;
+* the listing (:mod:`._catalog_sql`) reads the catalog and a copy of the event tables
+  with :mod:`sqlite3` and :mod:`duckdb` alone, without importing tiled (whose catalog
+  adapter takes seconds to import); the client and the fallback use tiled's adapter;
 * the raw traces are read from ``DIR/raw`` (the only readable file storage), in HDF5's
   single-writer-multiple-reader mode, so a file being written is readable too.
 
@@ -63,9 +66,11 @@ class LocalStore:
     """A quietwell data directory opened read-only in this process.
 
     :attr:`client` is the standard tiled client (made with ``Context.from_app``, so
-    everything tiled's client does works, raw traces included); the listing and the
-    tables go to the catalog adapter directly, which is several times faster than
-    even an in-process request per run.
+    everything tiled's client does works, raw traces included). The listing and the
+    tables read the catalog's files directly (:mod:`._catalog_sql`, no tiled import),
+    or, for a catalog of another layout, go to tiled's catalog adapter
+    (:meth:`run`), which is still several times faster than a request per run.
+    Nothing of tiled is imported until :meth:`run` or :attr:`client` is used.
     """
 
     def __init__(self, data_dir: str | Path) -> None:
@@ -88,11 +93,16 @@ class LocalStore:
                              "catalog/catalog.db); give the data directory a campaign or "
                              "`quietwell demo` wrote to, or a tiled server with --uri")
         os.environ.setdefault("TILED_HDF5_SWMR_DEFAULT", "1")
-        _register_event_tables(self.data_dir / "catalog")
+        #: copies of the event tables, shared by tiled's adapter and the direct listing
+        self.snapshots = _Snapshots(self.data_dir / "catalog" / "storage.duckdb")
+        self._registered = False
 
     def _make_adapter(self) -> Any:
         from tiled.catalog import from_uri
 
+        if not self._registered:  # tiled is imported only when its adapter is wanted
+            _register_event_tables(self.data_dir / "catalog", self.snapshots)
+            self._registered = True
         db = self.data_dir / "catalog" / "catalog.db"
         # mode=ro: SQLite refuses every write, so this reader cannot change the catalog.
         return from_uri(f"sqlite:///file:{db}?mode=ro&uri=true",
@@ -239,14 +249,12 @@ def _open_uri(uri: str, api_key_env: str) -> Any:
 _REGISTERED: set[str] = set()
 
 
-def _register_event_tables(catalog_dir: Path) -> None:
-    """Make tiled read the event tables (DuckDB) read-only, or a consistent copy of them
-    while a writer holds the file."""
+def _register_event_tables(catalog_dir: Path, snapshots: _Snapshots) -> None:
+    """Make tiled read the event tables (DuckDB) read-only, from a consistent copy."""
     import sqlite3
 
     from tiled.storage import EmbeddedSQLStorage, acquire_storage
 
-    path = catalog_dir / "storage.duckdb"
     db = sqlite3.connect(f"file:{catalog_dir / 'catalog.db'}?mode=ro", uri=True, timeout=30)
     try:  # the URI the writer recorded (its own path for the file)
         uris = [u for (u,) in db.execute(
@@ -255,8 +263,6 @@ def _register_event_tables(catalog_dir: Path) -> None:
         uris = []
     finally:
         db.close()
-
-    snapshots = _Snapshots(path)
 
     @dataclasses.dataclass(frozen=True)
     class ReadOnlyDuckDB(EmbeddedSQLStorage):
@@ -296,22 +302,30 @@ class _Snapshots:
         return tuple((p.stat().st_size, p.stat().st_mtime_ns) if p.exists() else None
                      for p in (self.path, self.wal))
 
+    def current(self) -> Path | None:
+        """The path of a copy as the file is now (None: the store has no event table)."""
+        with self._lock:
+            if not self.path.exists():
+                return None
+            if self._copy is None or self._stat() != self._state:
+                self._take()
+            return self._copy
+
     def connect(self) -> Any:
+        """An ADBC connection (tiled's kind) to the current copy, read-only."""
         import adbc_driver_duckdb
         import adbc_driver_manager
         import adbc_driver_manager.dbapi as dbapi
 
-        with self._lock:
-            if not self.path.exists():  # a store with no event table yet
-                db = adbc_driver_manager.AdbcDatabase(
-                    driver=adbc_driver_duckdb.driver_path(), entrypoint="duckdb_adbc_init")
-                return dbapi.Connection(db, adbc_driver_manager.AdbcConnection(db))
-            if self._copy is None or self._stat() != self._state:
-                self._take()
+        copy = self.current()
+        if copy is None:  # a store with no event table yet
             db = adbc_driver_manager.AdbcDatabase(
-                driver=adbc_driver_duckdb.driver_path(), entrypoint="duckdb_adbc_init",
-                path=str(self._copy), access_mode="READ_ONLY")
+                driver=adbc_driver_duckdb.driver_path(), entrypoint="duckdb_adbc_init")
             return dbapi.Connection(db, adbc_driver_manager.AdbcConnection(db))
+        db = adbc_driver_manager.AdbcDatabase(
+            driver=adbc_driver_duckdb.driver_path(), entrypoint="duckdb_adbc_init",
+            path=str(copy), access_mode="READ_ONLY")
+        return dbapi.Connection(db, adbc_driver_manager.AdbcConnection(db))
 
     def _take(self, attempts: int = 20) -> None:
         if self._folder is None:

@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import math
+import os
 import re
+import sys
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -98,7 +101,19 @@ def parse_since(value: Any) -> float:
 # search
 
 
+def _uid_prefix(uid: Any) -> str | None:
+    """``uid`` checked (a uid or its first 4 or more characters), in lower case."""
+    if uid is None:
+        return None
+    text = str(uid).strip()
+    if not re.fullmatch(r"[0-9a-fA-F-]{4,36}", text):
+        raise InputError(f"--uid {text!r} is not a run uid; give a uid or its first "
+                         "4 or more characters, as `quietwell runs` shows them")
+    return text.lower()
+
+
 def _queries(setup, plan, campaign, since, uid, usable_only) -> list:
+    """tiled's queries for the filters (see ``_catalog_sql._where`` for the same as SQL)."""
     from tiled.queries import Key, KeyPresent, Like
 
     q = []
@@ -111,11 +126,7 @@ def _queries(setup, plan, campaign, since, uid, usable_only) -> list:
     if since is not None:
         q.append(Key("start.time") >= parse_since(since))
     if uid is not None:
-        text = str(uid).strip()
-        if not re.fullmatch(r"[0-9a-fA-F-]{4,36}", text):
-            raise InputError(f"--uid {text!r} is not a run uid; give a uid or its first "
-                             "4 or more characters, as `quietwell runs` shows them")
-        q.append(Like("start.uid", text.lower() + "%"))
+        q.append(Like("start.uid", _uid_prefix(uid) + "%"))
     if usable_only:
         q.append(Key("stop.exit_status") == "success")
         q.append(KeyPresent("superseded_by", False))
@@ -260,6 +271,21 @@ def _client_summaries(client: Any, uids: Sequence[str]) -> dict[str, tuple]:
     return dict(one(u) for u in uids)
 
 
+_FELL_BACK: set[Any] = set()
+
+
+def _tiled_path(store: LocalStore) -> bool:
+    """True to read ``store`` through tiled's adapter (``QUIETWELL_READ_VIA_TILED=1``,
+    or after the direct reading found a catalog it does not know)."""
+    return os.environ.get("QUIETWELL_READ_VIA_TILED") == "1" or store.data_dir in _FELL_BACK
+
+
+def _notice_fallback(store: LocalStore, exc: Exception) -> None:
+    _FELL_BACK.add(store.data_dir)
+    print(f"quietwell: note: {store.data_dir}: {exc}; reading it through tiled's catalog "
+          "adapter instead (slower)", file=sys.stderr)
+
+
 def find_runs(location: Any, *, setup: str | None = None, plan: str | None = None,
               campaign: str | None = None, since: Any = None, uid: str | None = None,
               usable_only: bool = False, summaries: bool = True,
@@ -283,8 +309,29 @@ def find_runs(location: Any, *, setup: str | None = None, plan: str | None = Non
     api_key_env : str
         For a URI: the environment variable holding the API key.
     """
-    queries = _queries(setup, plan, campaign, since, uid, usable_only)  # refused first
+    # refused before the store is opened
+    since_s = None if since is None else parse_since(since)
+    prefix = _uid_prefix(uid)
     store = resolve(location, api_key_env=api_key_env)
+    if isinstance(store, LocalStore) and not _tiled_path(store):
+        from . import _catalog_sql
+
+        try:
+            found = _catalog_sql.list_runs(
+                store.data_dir / "catalog", store.snapshots.current, setup=setup, plan=plan,
+                campaign=campaign, since=since_s, uid_prefix=prefix, usable_only=usable_only,
+                summaries=summaries)
+        except _catalog_sql.SchemaMismatch as exc:
+            _notice_fallback(store, exc)
+        else:
+            records = []
+            for key, md, got in found:
+                rec = _record(key, md)
+                if got is not None:
+                    rec = dataclasses.replace(rec, summary=got[0], units=got[1])
+                records.append(rec)
+            return sorted(records, key=lambda r: (r.time, r.uid))
+    queries = _queries(setup, plan, campaign, since_s, prefix, usable_only)
     if isinstance(store, LocalStore):
         found = store.run(_local_search, queries)
     else:
@@ -296,8 +343,6 @@ def find_runs(location: Any, *, setup: str | None = None, plan: str | None = Non
             got = store.run(_local_summaries, uids)
         else:
             got = _client_summaries(store, uids)
-        import dataclasses
-
         records = [r if got.get(r.uid) is None else
                    dataclasses.replace(r, summary=got[r.uid][0], units=got[r.uid][1])
                    for r in records]
