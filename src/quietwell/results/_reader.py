@@ -105,8 +105,11 @@ class LocalStore:
             self._registered = True
         db = self.data_dir / "catalog" / "catalog.db"
         # mode=ro: SQLite refuses every write, so this reader cannot change the catalog.
+        # readable: the raw traces, and the arrays the catalog process wrote into its own
+        # writable storage (catalog/data: array fields of small streams such as ensemble)
         return from_uri(f"sqlite:///file:{db}?mode=ro&uri=true",
-                        readable_storage=[str(self.data_dir / "raw")])
+                        readable_storage=[str(self.data_dir / "raw"),
+                                          str(self.data_dir / "catalog" / "data")])
 
     def run(self, func: Callable[..., Coroutine], *args: Any) -> Any:
         """Run ``await func(adapter, *args)`` on this store's event loop."""
