@@ -41,3 +41,15 @@ def chromium_path() -> str:
     if path:
         return path
     return _need("QUIETWELL_TEST_CHROMIUM", "Chromium")
+
+
+@pytest.fixture(scope="module")
+def lab(pg_admin_uri, tmp_path_factory):
+    """A lab catalog of the test module's own (tests/lab_server.py): tiled on PostgreSQL,
+    fresh databases, a free port; the module's tests may kill and restart it."""
+    from lab_server import LabServer
+
+    server = LabServer(pg_admin_uri, tmp_path_factory.mktemp("lab"))
+    server.start()
+    yield server
+    server.stop()

@@ -18,14 +18,6 @@ from lab_server import ROOT, LabServer, server_profile
 TINY = ROOT / "tests" / "data" / "tiny-campaign.toml"
 
 
-@pytest.fixture(scope="module")
-def lab(pg_admin_uri, tmp_path_factory):
-    server = LabServer(pg_admin_uri, tmp_path_factory.mktemp("lab"))
-    server.start()
-    yield server
-    server.stop()
-
-
 def _env(lab: LabServer, **extra) -> dict:
     env = {k: v for k, v in lab.env.items() if not k.startswith("QUIETWELL_LAB_")}
     env.pop("PGUSER", None)

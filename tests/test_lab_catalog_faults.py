@@ -13,17 +13,9 @@ import threading
 import time
 
 import pytest
-from lab_server import CONFIG, ROOT, LabServer, free_port, server_profile
+from lab_server import CONFIG, ROOT, free_port, server_profile
 
 TINY = ROOT / "tests" / "data" / "tiny-campaign.toml"
-
-
-@pytest.fixture(scope="module")
-def lab(pg_admin_uri, tmp_path_factory):
-    server = LabServer(pg_admin_uri, tmp_path_factory.mktemp("labfaults"))
-    server.start()
-    yield server
-    server.stop()
 
 
 def _refused(lab, tmp_path, prof, env_extra: dict) -> str:

@@ -28,7 +28,7 @@ from quietwell.campaign import campaign_dirs, read_ledger
 from quietwell.store import close_catalog, open_catalog
 
 sys.path.insert(0, str(Path(__file__).parent))
-from lab_server import LabServer, server_profile  # noqa: E402
+from lab_server import server_profile  # noqa: E402
 
 HERE = Path(__file__).parent
 SHORT = HERE / "data" / "queue-campaign.toml"
@@ -147,15 +147,6 @@ def manager(lab_startup, redis_uri, tmp_path):
     yield m
     m.kill()
     m.drop_keys()
-
-
-@pytest.fixture(scope="module")
-def lab(pg_admin_uri, tmp_path_factory):
-    """The lab's shared catalog (tiled on PostgreSQL) that the queued campaign writes to."""
-    server = LabServer(pg_admin_uri, tmp_path_factory.mktemp("lab"))
-    server.start()
-    yield server
-    server.stop()
 
 
 @pytest.fixture

@@ -81,15 +81,7 @@ class EmbeddedStore:
         """Start the server and the writer (idempotent)."""
         if self._server is not None:
             return self
-        if self.data_dir.exists() and not self.data_dir.is_dir():
-            raise InputError(f"--data-dir {self.data_dir} is a file, not a directory; "
-                             "give a directory (it is created if missing)")
-        try:
-            for d in (self.raw_dir, self.catalog_dir, self.backup_dir, self.journal_dir):
-                d.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise InputError(f"--data-dir {self.data_dir}: cannot create it ({exc.strerror}); "
-                             "choose a writable directory") from None
+        make_store_dirs(self, "choose a writable directory")
         from bluesky_tiled_plugins import TiledWriter
         from tiled.client import from_uri
 
@@ -169,6 +161,19 @@ class EmbeddedStore:
         failed = self.close()
         if failed and exc_type is None:
             raise QuietwellError(_refused(failed, self.journal_dir, self.data_dir))
+
+
+def make_store_dirs(store: Any, fix: str) -> None:
+    """Create the folders of a store's data directory, or refuse in one line."""
+    if store.data_dir.exists() and not store.data_dir.is_dir():
+        raise InputError(f"--data-dir {store.data_dir} is a file, not a directory; "
+                         "give a directory (it is created if missing)")
+    try:
+        for d in (store.raw_dir, store.catalog_dir, store.backup_dir, store.journal_dir):
+            d.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"{exc.filename or store.data_dir}: cannot create it "
+                         f"({exc.strerror}); {fix}") from None
 
 
 def _refused(failed: dict[str, str], journal_dir: Path, data_dir: Path) -> str:

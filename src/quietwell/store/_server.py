@@ -24,7 +24,7 @@ from pathlib import Path
 from typing import Any
 
 from .._errors import InputError, QuietwellError
-from ._embedded import EmbeddedStore, _CatalogProcess, _StoreWriter
+from ._embedded import EmbeddedStore, _CatalogProcess, _StoreWriter, make_store_dirs
 from ._journal import Journal
 
 __all__ = ["CatalogServerError", "ServerStore", "check_server", "check_setup_claim", "explain_http_error",
@@ -179,15 +179,7 @@ class ServerStore(EmbeddedStore):
                                      f"failed ({explain_http_error(exc)}); no run was "
                                      "started") from None
         check_setup_claim(client, self.setup)
-        if self.data_dir.exists() and not self.data_dir.is_dir():
-            raise InputError(f"--data-dir {self.data_dir} is a file, not a directory; "
-                             "give a directory (it is created if missing)")
-        try:
-            for d in (self.raw_dir, self.catalog_dir, self.backup_dir, self.journal_dir):
-                d.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise InputError(f"{exc.filename}: cannot create it ({exc.strerror}); choose a "
-                             "writable --data-dir, or fix [data] raw_dir") from None
+        make_store_dirs(self, "choose a writable --data-dir, or fix [data] raw_dir")
         self._write_store_json()
         from bluesky_tiled_plugins import TiledWriter
 
